@@ -1,0 +1,36 @@
+# Set-up on a fresh machine: `make demo` or `make test`. Both create .venv when missing and install the
+# package into it (a real, non-editable install, the way users get it).
+VENV ?= .venv
+PYTHON ?= python3
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.stagewatch-installed
+SOURCES := pyproject.toml $(shell find src catalog templates -type f -not -name '*.pyc' 2>/dev/null)
+
+.PHONY: demo test install tools bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+
+$(STAMP): $(BIN)/python $(SOURCES)
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check --upgrade pip
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check --force-reinstall --no-deps .
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test]"
+	touch $(STAMP)
+
+install: $(STAMP)
+
+# promtool, amtool and a Prometheus server for the export tests (Debian packages).
+tools:
+	@./.ci/install-tools
+
+demo: install
+	$(BIN)/stagewatch demo -o stagewatch-demo
+
+test: install tools
+	$(BIN)/python -m pytest
+
+bench: install
+	$(BIN)/python benchmarks/bench_plan.py
+
+clean:
+	rm -rf $(VENV) stagewatch-demo build dist .pytest_cache

@@ -1,0 +1,3 @@
+from stagewatch.cli import main
+
+raise SystemExit(main())

@@ -1,0 +1,165 @@
+"""The rule catalog: load ``catalog/*.yaml`` and match rules to stages, hand-offs and the whole pipeline.
+
+A rule's ``when`` lists stage traits; a trait given as a list matches any of its values, and every listed trait
+must match. ``each: input_field`` (or ``output_field``) repeats the rule for every declared field that passes the
+``field_*`` conditions. Edge rules test the upstream stage (``from``) and the downstream stage (``to``).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from dataclasses import field as dataclass_field
+from pathlib import Path
+from typing import Any, Iterator
+
+from stagewatch import yamlio
+from stagewatch.errors import StagewatchError
+from stagewatch.graph import PipelineGraph
+from stagewatch.resources import data_dir, schema
+from stagewatch.spec import FieldSpec, Pipeline, Stage
+
+PIPELINE_OWNER = "pipeline"
+_TRAITS = ("kind", "modality", "output", "serving", "labels", "change_rate")
+
+
+@dataclass(frozen=True)
+class Rule:
+    id: str
+    scope: str
+    when: dict[str, Any]
+    metrics: tuple[dict[str, Any], ...]
+    file: str
+    line: int | None
+
+
+@dataclass
+class Proposal:
+    """One metric a rule proposes for one stage (or for the pipeline), before sizing."""
+
+    owner: str  # stage id or "pipeline"
+    name: str
+    rule: Rule
+    template: dict[str, Any]
+    field: FieldSpec | None = None
+    edge: tuple[str, str] | None = None
+    side: str | None = None
+    values: dict[str, str] = dataclass_field(default_factory=dict)
+
+    @property
+    def layer(self) -> str:
+        return self.template["layer"]
+
+    @property
+    def id(self) -> str:
+        return f"{self.owner}.{self.layer}.{self.name}"
+
+    def text(self, key: str) -> str:
+        return self.template[key].format(**self.values)
+
+
+def load_catalog(directory: str | Path | None = None) -> list[Rule]:
+    """Every rule in ``directory`` (the shipped catalog by default), in file then file-order."""
+    root = Path(directory) if directory else data_dir("catalog")
+    rules: list[Rule] = []
+    seen: dict[str, str] = {}
+    files = sorted(root.glob("*.yaml"))
+    if not files:
+        raise StagewatchError("no rule files (*.yaml) here", file=str(root))
+    for path in files:
+        doc = yamlio.load(path)
+        yamlio.validate(doc, schema("catalog"))
+        for index, raw in enumerate(doc.data["rules"]):
+            line = doc.line_of(("rules", index, "id"))
+            if raw["id"] in seen:
+                raise StagewatchError(f"rule id '{raw['id']}' is already used in {seen[raw['id']]}",
+                                      file=str(path), line=line, expected="a unique rule id")
+            seen[raw["id"]] = f"{path.name}"
+            if raw["scope"] == "edge" and any("side" not in m for m in raw["metrics"]):
+                raise StagewatchError(f"edge rule '{raw['id']}' has a metric without 'side'", file=str(path),
+                                      line=line, expected="side: upstream or side: downstream")
+            rules.append(Rule(id=raw["id"], scope=raw["scope"], when=raw.get("when", {}),
+                              metrics=tuple(raw["metrics"]), file=str(path), line=line))
+    return rules
+
+
+def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph) -> bool:
+    for key in _TRAITS:
+        if key in cond and getattr(stage, key) not in cond[key]:
+            return False
+    if "context" in cond and pipeline.context not in cond["context"]:
+        return False
+    if "has_latency_slo" in cond and (stage.latency_slo_ms is not None) != cond["has_latency_slo"]:
+        return False
+    if "has_upstream" in cond and bool(graph.upstream(stage.id)) != cond["has_upstream"]:
+        return False
+    if "has_downstream" in cond and bool(graph.downstream(stage.id)) != cond["has_downstream"]:
+        return False
+    return True
+
+
+def _fields(cond: dict[str, Any], stage: Stage) -> Iterator[FieldSpec]:
+    fields = stage.inputs if cond["each"] == "input_field" else stage.outputs
+    for f in fields:
+        if "field_type" in cond and f.type not in cond["field_type"]:
+            continue
+        if "field_has_range" in cond and (f.range is not None) != cond["field_has_range"]:
+            continue
+        if "field_has_unknown" in cond and (f.unknown_value is not None) != cond["field_has_unknown"]:
+            continue
+        yield f
+
+
+def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[Proposal]:
+    """Every metric the catalog proposes for ``pipeline``, stages in topological order."""
+    out: list[Proposal] = []
+    stages = {s.id: s for s in pipeline.stages}
+    for stage_id in graph.order:
+        stage = stages[stage_id]
+        for rule in rules:
+            if rule.scope != "stage" or not _traits_match(rule.when, stage, pipeline, graph):
+                continue
+            values = {"stage": stage.id}
+            if "each" in rule.when:
+                for f in _fields(rule.when, stage):
+                    for template in rule.metrics:
+                        v = {**values, "field": f.name}
+                        out.append(Proposal(stage.id, template["name"].format(**v), rule, template, f, values=v))
+            else:
+                for template in rule.metrics:
+                    out.append(Proposal(stage.id, template["name"].format(**values), rule, template,
+                                        values=values))
+    for up, down in graph.edges:
+        for rule in rules:
+            if rule.scope != "edge":
+                continue
+            if not _traits_match(rule.when.get("from", {}), stages[up], pipeline, graph):
+                continue
+            if not _traits_match(rule.when.get("to", {}), stages[down], pipeline, graph):
+                continue
+            values = {"upstream": up, "downstream": down}
+            for template in rule.metrics:
+                owner = up if template["side"] == "upstream" else down
+                out.append(Proposal(owner, template["name"].format(**values), rule, template, edge=(up, down),
+                                    side=template["side"], values={**values, "stage": owner}))
+    sinks = [stages[s] for s in graph.sinks]
+    for rule in rules:
+        if rule.scope != "pipeline":
+            continue
+        cond = rule.when
+        if "any_stage" in cond and not any(_traits_match(cond["any_stage"], s, pipeline, graph)
+                                           for s in pipeline.stages):
+            continue
+        if "any_sink" in cond and not any(_traits_match(cond["any_sink"], s, pipeline, graph) for s in sinks):
+            continue
+        for template in rule.metrics:
+            values = {"stage": PIPELINE_OWNER, "pipeline": pipeline.name}
+            out.append(Proposal(PIPELINE_OWNER, template["name"].format(**values), rule, template, values=values))
+    seen: dict[str, Proposal] = {}
+    for proposal in out:
+        if proposal.id in seen:
+            other = seen[proposal.id]
+            raise StagewatchError(
+                f"rules '{other.rule.id}' and '{proposal.rule.id}' both propose metric '{proposal.id}'",
+                file=proposal.rule.file, line=proposal.rule.line, expected="metric names unique per stage and layer")
+        seen[proposal.id] = proposal
+    return out

@@ -1,0 +1,40 @@
+"""One error type for problems the user can fix, and the exit codes the CLI maps them to."""
+
+from __future__ import annotations
+
+# Exit codes, documented in the README.
+EXIT_OK = 0
+EXIT_FINDINGS = 1  # lint findings, failed checks
+EXIT_USAGE = 2  # unreadable or invalid input, bad usage
+EXIT_INTERNAL = 3  # a bug in stagewatch
+EXIT_INTERRUPTED = 130
+
+
+class StagewatchError(Exception):
+    """A problem in what the user gave us, with where it is and what was expected.
+
+    ``str(error)`` reads ``file:line: message (expected: ...)``.
+    """
+
+    exit_code = EXIT_USAGE
+
+    def __init__(
+        self,
+        message: str,
+        *,
+        file: str | None = None,
+        line: int | None = None,
+        expected: str | None = None,
+    ) -> None:
+        super().__init__(message)
+        self.message = message
+        self.file = file
+        self.line = line
+        self.expected = expected
+
+    def __str__(self) -> str:
+        where = ""
+        if self.file:
+            where = f"{self.file}:{self.line}: " if self.line else f"{self.file}: "
+        tail = f" (expected: {self.expected})" if self.expected else ""
+        return f"{where}{self.message}{tail}"

@@ -1,0 +1,52 @@
+"""`explain`: the derivation of one metric's window and thresholds, in words."""
+
+from __future__ import annotations
+
+from typing import Any
+
+from stagewatch.errors import StagewatchError
+from stagewatch.plan import all_metrics
+
+
+def find_metric(plan: dict[str, Any], metric_id: str, path: str) -> dict[str, Any]:
+    metrics = {m["id"]: m for m in all_metrics(plan) + plan.get("retired_metrics", [])}
+    if metric_id in metrics:
+        return metrics[metric_id]
+    close = sorted(m for m in metrics if metric_id.split(".")[-1] in m)[:5]
+    hint = ("did you mean " + ", ".join(close) + "?") if close else "an id such as " + next(iter(metrics), "?")
+    raise StagewatchError(f"no metric '{metric_id}' in this plan", file=path, expected=hint)
+
+
+def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
+    m = find_metric(plan, metric_id, path)
+    sizing = m.get("sizing") or {}
+    lines = [f"{m['id']}  ({m['layer']} metric, {m['status']}, from {m.get('source', 'manual')})",
+             f"  measures:  {m.get('measure', '')}",
+             f"  statistic: {m['statistic']} ({m.get('unit', '')}), direction {m['direction']}",
+             f"  window:    {m['window']} against reference {m.get('reference', '')}",
+             f"  warn:      {_th(m.get('warn'))}    critical: {_th(m.get('critical'))} -> {m['severity']}",
+             f"  catches:   {', '.join(m.get('catches', []))}",
+             f"  why:       {m.get('why', '')}"]
+    for key, label in (("samples_per_window", "samples per window"), ("reference_samples", "reference samples"),
+                       ("evaluations_per_week", "evaluations per week"), ("alpha", "alpha per evaluation"),
+                       ("noise_floor", "noise floor"), ("detectable_change", "smallest detectable change"),
+                       ("power", "power"), ("expected_false_alarms_per_week", "expected false alarms/week"),
+                       ("evaluation_lag", "evaluated after")):
+        if key in sizing:
+            lines.append(f"  {label + ':':29}{sizing[key]}")
+    for pair in sizing.get("burn_rate_alerts", []):
+        lines.append(f"  {pair['severity']:6} when burn rate > {pair['burn_rate']} over {pair['long_window']} and "
+                     f"{pair['short_window']} ({pair['budget_consumed']:.0%} of the error budget)")
+    if sizing.get("derivation"):
+        lines.append("")
+        lines.append("  " + sizing["derivation"])
+    if m.get("review"):
+        lines.append("")
+        lines.append(f"  review: {m['review']}")
+    if m.get("note"):
+        lines.append(f"  note:   {m['note']}")
+    return "\n".join(lines)
+
+
+def _th(value: Any) -> str:
+    return "none" if value is None else f"{value:g}"

@@ -1,0 +1,174 @@
+"""Check a plan for form and meaning: every stage and hand-off watched, thresholds in order, ids unique."""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass
+from typing import Any, Iterator
+
+import jsonschema
+
+from stagewatch import durations, yamlio
+from stagewatch.errors import StagewatchError
+from stagewatch.plan import all_metrics, budget_summary, pipeline_of
+from stagewatch.resources import validator
+
+LAYERS = ("software", "input", "output")
+LIVE = ("proposed", "accepted")
+
+
+@dataclass(frozen=True)
+class Finding:
+    file: str
+    line: int | None
+    code: str
+    message: str
+    subject: str | None = None
+
+    def __str__(self) -> str:
+        where = f"{self.file}:{self.line}" if self.line else self.file
+        return f"{where}: [{self.code}] {self.message}"
+
+    def to_dict(self) -> dict[str, Any]:
+        return asdict(self)
+
+
+def lint_file(path: str) -> list[Finding]:
+    """All findings for the plan at ``path``; raises StagewatchError only when the file cannot be read as YAML."""
+    doc = yamlio.load(path)
+    if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
+        raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
+                              expected="a file written by `stagewatch propose`")
+    return lint_document(doc)
+
+
+def lint_document(doc: yamlio.Document) -> list[Finding]:
+    schema_errors = sorted(validator("plan").iter_errors(doc.data), key=lambda e: list(map(str, e.absolute_path)))
+    if schema_errors:
+        return [Finding(doc.path, doc.line_of(e.absolute_path), "schema",
+                        f"{'.'.join(map(str, e.absolute_path)) or 'top level'}: {_short(e)}")
+                for e in schema_errors]
+    try:
+        pipeline_of(doc.data, doc)
+    except StagewatchError as exc:
+        return [Finding(doc.path, exc.line, "description", str(exc.message)
+                        + (f" (expected: {exc.expected})" if exc.expected else ""))]
+    return list(_meaning(doc))
+
+
+def _short(error: jsonschema.ValidationError) -> str:
+    if error.validator == "enum":
+        return f"{error.instance!r} is not one of {', '.join(map(str, error.validator_value))}"
+    return error.message
+
+
+def _located(doc: yamlio.Document) -> Iterator[tuple[tuple, dict[str, Any], str]]:
+    """(path in the document, metric, owner) for every metric."""
+    for i, stage in enumerate(doc.data["stages"]):
+        for j, metric in enumerate(stage.get("metrics", [])):
+            yield ("stages", i, "metrics", j), metric, stage["id"]
+    for key in ("pipeline_metrics", "retired_metrics"):
+        for j, metric in enumerate(doc.data.get(key, [])):
+            yield (key, j), metric, "pipeline" if key == "pipeline_metrics" else None
+
+
+def _ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
+    """Warn must be reached before critical. Drift statistics are sizes of change (larger is worse in every
+    direction); only fixed-limit levels read as levels, where 'below' means lower is worse."""
+    if statistic != "level" or direction == "above":
+        return warn < critical
+    if direction == "below":
+        return warn > critical
+    return abs(warn) < abs(critical)
+
+
+def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
+    plan = doc.data
+    path = doc.path
+    seen: dict[str, int | None] = {}
+    for where, metric, owner in _located(doc):
+        line = doc.line_of(where)
+        mid = metric["id"]
+        if mid in seen:
+            yield Finding(path, line, "duplicate-id", f"metric id '{mid}' is used again (first on line {seen[mid]})", mid)
+        seen.setdefault(mid, line)
+        prefix, layer, _ = mid.split(".", 2)
+        if owner is not None and prefix != owner:
+            yield Finding(path, line, "id-form", f"metric '{mid}' sits under '{owner}' but its id starts with "
+                          f"'{prefix}.'; ids are <stage>.<layer>.<name>", mid)
+        if layer != metric["layer"]:
+            yield Finding(path, doc.line_of((*where, "layer")), "id-form",
+                          f"metric '{mid}' has layer '{metric['layer']}' but its id says '{layer}'", mid)
+        if metric["window"] == "auto":
+            yield Finding(path, doc.line_of((*where, "window")), "window",
+                          f"metric '{mid}' still has window 'auto'; run `stagewatch propose` to size it", mid)
+        elif durations.is_duration(metric.get("reference")) and (
+                durations.parse(metric["reference"]) < durations.parse(metric["window"])):
+            yield Finding(path, doc.line_of((*where, "reference")), "window",
+                          f"metric '{mid}': reference {metric['reference']} is shorter than window "
+                          f"{metric['window']}", mid)
+        warn, critical = metric.get("warn"), metric.get("critical")
+        if warn is not None and critical is not None and not _ordered(warn, critical, metric["direction"],
+                                                                                  metric["statistic"]):
+            yield Finding(path, doc.line_of((*where, "warn")), "threshold-order",
+                          f"metric '{mid}': warn {warn:g} must come before critical {critical:g} for direction "
+                          f"'{metric['direction']}'", mid)
+        if warn is None and critical is None and metric["status"] in LIVE:
+            yield Finding(path, line, "threshold-missing", f"metric '{mid}' has neither a warn nor a critical "
+                          "threshold, so it can never alert", mid)
+        if metric["status"] == "rejected" and not (metric.get("note") or "").strip():
+            yield Finding(path, doc.line_of((*where, "status")), "rejected-without-note",
+                          f"metric '{mid}' is rejected without a note saying why", mid)
+        if metric["status"] == "stale":
+            yield Finding(path, doc.line_of((*where, "status")), "stale",
+                          f"metric '{mid}' is stale: {metric.get('review', 'its rule no longer applies')}", mid)
+        floor = (metric.get("sizing") or {}).get("noise_floor")
+        if metric["status"] in LIVE and floor is not None and critical is not None and metric["statistic"] != "level":
+            if abs(critical) < floor:
+                yield Finding(path, doc.line_of((*where, "critical")), "below-noise-floor",
+                              f"metric '{mid}': critical {critical:g} is below the noise floor {floor:g} at window "
+                              f"{metric['window']}; it will fire on noise", mid)
+    yield from _coverage(doc)
+    summary = budget_summary(plan)
+    if summary["expected_false_pages_per_week"] > plan.get("false_alarms_per_week", 1) * (1 + 1e-9):
+        yield Finding(path, doc.line_of(("false_alarms_per_week",)), "budget",
+                      f"expected false pages per week {summary['expected_false_pages_per_week']:g} exceed the "
+                      f"budget of {plan['false_alarms_per_week']:g}")
+
+
+def _counts(metric: dict[str, Any]) -> bool:
+    """A metric covers what it watches if it is live, or rejected with a note saying why."""
+    return metric["status"] in LIVE or (metric["status"] == "rejected" and bool((metric.get("note") or "").strip()))
+
+
+def _coverage(doc: yamlio.Document) -> Iterator[Finding]:
+    plan = doc.data
+    path = doc.path
+    stages = plan["stages"]
+    for i, stage in enumerate(stages):
+        metrics = [m for m in stage.get("metrics", []) if _counts(m)]
+        line = doc.line_of(("stages", i, "id"))
+        for layer in LAYERS:
+            if not any(m["layer"] == layer for m in metrics):
+                yield Finding(path, line, "coverage-layer", f"stage '{stage['id']}' has no {layer} metric (add "
+                              f"one, or keep a rejected one with a note saying why)", stage["id"])
+        if stage.get("kind") == "learned":
+            covered = {n for m in metrics for n in m.get("ml_test_score", [])}
+            missing = [str(n) for n in range(1, 8) if n not in covered]
+            if missing:
+                yield Finding(path, line, "ml-test-score", f"learned stage '{stage['id']}' lacks ML Test Score "
+                              f"monitoring check(s) {', '.join(missing)}", stage["id"])
+    by_id = {s["id"]: s for s in stages}
+    for i, stage in enumerate(stages):
+        for up in stage.get("upstream", []):
+            for side, owner in (("upstream", up), ("downstream", stage["id"])):
+                ok = any(_counts(m) and (m.get("edge") or {}).get("from") == up
+                         and (m.get("edge") or {}).get("to") == stage["id"] and m["edge"]["side"] == side
+                         for m in by_id[owner].get("metrics", []))
+                if not ok:
+                    yield Finding(path, doc.line_of(("stages", i, "upstream")), "coverage-edge",
+                                  f"hand-off {up} -> {stage['id']} has no check on its {side} side "
+                                  f"(stage '{owner}')", f"{up}->{stage['id']}")
+
+
+def count_metrics(plan: dict[str, Any]) -> int:
+    return len(all_metrics(plan))

@@ -1,0 +1,302 @@
+"""The plan: compose it from a pipeline and the catalog, merge it with a plan people already edited, write it.
+
+Reviewer intent lives in fields (``status``, ``note``, thresholds, windows), never in comments. Each generated
+metric carries a ``fingerprint`` of the fields people edit; when a re-run finds the fingerprint unchanged, nobody
+touched the metric and it is refreshed, otherwise the human version wins and only its ``sizing`` is recomputed.
+"""
+
+from __future__ import annotations
+
+import copy
+import hashlib
+import json
+from dataclasses import dataclass
+from typing import Any
+
+from stagewatch import durations, sizing, yamlio
+from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
+from stagewatch.errors import StagewatchError
+from stagewatch.graph import PipelineGraph
+from stagewatch.resources import schema, validator
+from stagewatch.spec import Pipeline
+
+PLAN_VERSION = 1
+HEADER = ("# stagewatch plan: edit status, note, window and thresholds in review; re-run `stagewatch propose` to "
+          "merge.\n# Schema: `stagewatch schema plan` prints it (JSON Schema 2020-12).\n")
+STATUSES = ("proposed", "accepted", "rejected", "stale")
+# Fields a reviewer edits; the fingerprint covers exactly these.
+EDITABLE = ("status", "measure", "statistic", "params", "unit", "window", "reference", "warn", "critical",
+            "direction", "severity", "catches", "why", "note")
+METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "statistic",
+               "params", "unit", "window", "reference", "warn", "critical", "direction", "severity", "catches",
+               "why", "ml_test_score", "on_labels", "review", "note", "sizing", "fingerprint")
+
+
+def fingerprint(metric: dict[str, Any]) -> str:
+    payload = json.dumps({k: metric.get(k) for k in EDITABLE}, sort_keys=True, default=str)
+    return hashlib.sha256(payload.encode()).hexdigest()[:12]
+
+
+def _resolve(value: Any, change_rate: str) -> Any:
+    if isinstance(value, dict) and "by_change_rate" in value:
+        return value["by_change_rate"][change_rate]
+    return value
+
+
+@dataclass
+class _Context:
+    pipeline: Pipeline
+    graph: PipelineGraph
+
+    def traffic(self, owner: str, edge: tuple[str, str] | None, quality: bool) -> sizing.Traffic:
+        stages = {s.id: s for s in self.pipeline.stages}
+        if owner == PIPELINE_OWNER:
+            sources = [stages[s] for s in self.graph.sources]
+            sinks = [stages[s] for s in self.graph.sinks]
+            rates = [s.change_rate for s in self.pipeline.stages]
+            fastest = min(rates, key=list(sizing.CHANGE_RATE_WINDOWS).index)
+            if quality:
+                labelled = [s for s in sinks if s.labels != "none"]
+                delays = [durations.parse(s.label_delay) for s in labelled if s.label_delay]
+                return sizing.Traffic(sum(s.labelled_per_hour for s in labelled), fastest,
+                                      durations.format(max(delays)) if delays else None)
+            return sizing.Traffic(sum(s.volume_per_hour for s in sources), fastest)
+        stage = stages[edge[0]] if edge else stages[owner]
+        if quality:
+            return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay)
+        return sizing.Traffic(stage.volume_per_hour, stage.change_rate, None, stage.slo_target, stage.slo_period,
+                              stage.latency_slo_ms)
+
+
+def _is_quality(metric: dict[str, Any]) -> bool:
+    return bool(metric.get("on_labels"))
+
+
+def _draft(proposal: Proposal, change_rate: str) -> dict[str, Any]:
+    t = proposal.template
+    metric: dict[str, Any] = {
+        "id": proposal.id,
+        "layer": t["layer"],
+        "status": "proposed",
+        "source": proposal.rule.id,
+        "measure": proposal.text("measure"),
+    }
+    if proposal.field is not None:
+        metric["field"] = proposal.field.name
+    if proposal.edge is not None:
+        metric["edge"] = {"from": proposal.edge[0], "to": proposal.edge[1], "side": proposal.side}
+    metric["statistic"] = t["statistic"]
+    if t.get("params"):
+        metric["params"] = dict(t["params"])
+    metric["unit"] = t.get("unit") or _unit(t["statistic"], t.get("params"))
+    metric["window"] = t.get("window", "auto")
+    metric["reference"] = t.get("reference", "28d")
+    metric["warn"] = _resolve(t.get("warn"), change_rate)
+    metric["critical"] = _resolve(t.get("critical"), change_rate)
+    metric["direction"] = t["direction"]
+    metric["severity"] = t["severity"]
+    metric["catches"] = list(t["catches"])
+    metric["why"] = proposal.text("why")
+    if t.get("ml_test_score"):
+        metric["ml_test_score"] = list(t["ml_test_score"])
+    if t.get("on_labels"):
+        metric["on_labels"] = True
+    return metric
+
+
+def _unit(statistic: str, params: dict[str, Any] | None) -> str:
+    from stagewatch import stats
+
+    if statistic == stats.BURN_RATE:
+        return "burn rate"
+    return stats.make(statistic, **(params or {})).unit
+
+
+def _order(metric: dict[str, Any]) -> dict[str, Any]:
+    out = {k: metric[k] for k in METRIC_KEYS if k in metric and metric[k] is not None}
+    for k in ("warn", "critical"):  # keep both keys visible, null means "no such level"
+        out.setdefault(k, None)
+    ordered = {k: out[k] for k in METRIC_KEYS if k in out}
+    ordered.update({k: v for k, v in metric.items() if k not in ordered and not k.startswith("_")
+                    and v is not None})
+    return ordered
+
+
+def _apply_sizing(metric: dict[str, Any], traffic: sizing.Traffic, budget: sizing.Budget, refresh: bool) -> None:
+    """Fill window, thresholds and the sizing block; ``refresh=False`` keeps the metric's own window/thresholds."""
+    work = dict(metric)
+    work["name"] = metric["id"]
+    if traffic.label_delay and _is_quality(metric):
+        work["_label_delay"] = traffic.label_delay
+    if not refresh:
+        # A reviewer's numbers stand; sizing only explains them.
+        result = sizing.size_metric({**work, "window": metric["window"]}, traffic, budget)
+        metric["sizing"] = result["sizing"]
+        if metric.get("critical") is not None and result["sizing"].get("noise_floor") is not None:
+            floor = result["sizing"]["noise_floor"]
+            metric["review"] = (f"the critical threshold {metric['critical']:g} is below the noise floor "
+                                f"{floor:g} at window {metric['window']}; expect false alarms"
+                                if metric["critical"] < floor else None)
+        return
+    result = sizing.size_metric(work, traffic, budget)
+    metric["window"] = result["window"]
+    metric["reference"] = result.get("reference", metric["reference"])
+    metric["warn"] = result["warn"]
+    metric["critical"] = result["critical"]
+    metric["review"] = result["review"]
+    metric["sizing"] = result["sizing"]
+
+
+def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[str, Any] | None = None
+            ) -> dict[str, Any]:
+    """The plan for ``pipeline``; with ``existing`` (a loaded plan), merged so that no human edit is lost."""
+    graph = PipelineGraph.build(pipeline)
+    rules = rules if rules is not None else load_catalog()
+    context = _Context(pipeline, graph)
+    stages = {s.id: s for s in pipeline.stages}
+    fresh: dict[str, dict[str, Any]] = {}
+    traffic_of: dict[str, sizing.Traffic] = {}
+    for proposal in match(rules, pipeline, graph):
+        change_rate = context.traffic(proposal.owner, proposal.edge, False).change_rate
+        draft = _draft(proposal, change_rate)
+        fresh[draft["id"]] = draft
+        traffic_of[draft["id"]] = context.traffic(proposal.owner, proposal.edge, _is_quality(draft))
+    old = _existing_metrics(existing) if existing else {}
+    merged: dict[str, dict[str, Any]] = {}
+    kept: set[str] = set()
+    for metric_id, draft in fresh.items():
+        before = old.get(metric_id)
+        if before is None or before.get("fingerprint") == fingerprint(before):
+            merged[metric_id] = draft
+        else:
+            metric = copy.deepcopy(before)
+            if metric.get("status") == "stale":  # its rule applies again
+                metric["status"] = metric.pop("previous_status", "proposed")
+            metric.pop("fingerprint", None)
+            merged[metric_id] = metric
+            kept.add(metric_id)
+    for metric_id, before in old.items():
+        if metric_id in merged:
+            continue
+        metric = copy.deepcopy(before)
+        if metric.get("source", "manual") != "manual" and metric.get("status") != "stale":
+            metric["previous_status"] = metric.get("status", "proposed")
+            metric["status"] = "stale"
+            metric["review"] = f"rule '{metric.get('source')}' no longer applies; delete this metric or make it manual"
+        merged[metric_id] = metric
+        kept.add(metric_id)
+    # Budget over everything that will alert, then size.
+    budget = sizing.make_budget(list(merged.values()), pipeline.false_alarms_per_week,
+                                pipeline.false_tickets_per_week)
+    for metric_id, metric in merged.items():
+        owner = metric_id.split(".", 1)[0]
+        traffic = traffic_of.get(metric_id)
+        if traffic is None and (owner in stages or owner == PIPELINE_OWNER):
+            edge = metric.get("edge")
+            edge_t = (edge["from"], edge["to"]) if edge and edge.get("from") in stages else None
+            traffic = context.traffic(owner, edge_t, _is_quality(metric))
+        if traffic is not None and metric.get("statistic") and metric.get("window"):
+            _apply_sizing(metric, traffic, budget, refresh=metric_id not in kept)
+        if metric_id not in kept:
+            metric["fingerprint"] = fingerprint(metric)
+    return _assemble(pipeline, graph, merged, kept, existing)
+
+
+def _existing_metrics(plan: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    out: dict[str, dict[str, Any]] = {}
+    for stage in plan.get("stages", []):
+        for m in stage.get("metrics", []):
+            out[m["id"]] = m
+    for m in plan.get("pipeline_metrics", []) + plan.get("retired_metrics", []):
+        out[m["id"]] = m
+    return out
+
+
+_LAYER_ORDER = {"software": 0, "input": 1, "output": 2}
+
+
+def _sort_key(metric: dict[str, Any], position: dict[str, int]) -> tuple:
+    return (_LAYER_ORDER.get(metric.get("layer"), 3), position.get(metric["id"], 10**9), metric["id"])
+
+
+def _assemble(pipeline: Pipeline, graph: PipelineGraph, metrics: dict[str, dict[str, Any]], kept: set[str],
+              existing: dict[str, Any] | None) -> dict[str, Any]:
+    position = {metric_id: i for i, metric_id in enumerate(metrics)}
+    by_owner: dict[str, list[dict[str, Any]]] = {}
+    for metric_id, metric in metrics.items():
+        by_owner.setdefault(metric_id.split(".", 1)[0], []).append(metric)
+    head = pipeline.to_dict()
+    plan: dict[str, Any] = {"plan_version": PLAN_VERSION}
+    plan.update({k: v for k, v in head.items() if k != "stages"})
+    stage_dicts = {s["id"]: s for s in head["stages"]}
+    plan["stages"] = []
+    for stage_id in graph.order:
+        block = dict(stage_dicts[stage_id])
+        block["downstream_reach"] = graph.reach[stage_id]
+        block["metrics"] = [_order(m) for m in sorted(by_owner.get(stage_id, []),
+                                                      key=lambda m: _sort_key(m, position))]
+        plan["stages"].append(block)
+    plan["pipeline_metrics"] = [_order(m) for m in sorted(by_owner.get(PIPELINE_OWNER, []),
+                                                          key=lambda m: _sort_key(m, position))]
+    retired = [m for owner, ms in by_owner.items() if owner not in stage_dicts and owner != PIPELINE_OWNER
+               for m in ms]
+    if retired:
+        plan["retired_metrics"] = [_order(m) for m in sorted(retired, key=lambda m: m["id"])]
+    plan["budget"] = budget_summary(plan)
+    return plan
+
+
+def all_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
+    out = [m for s in plan.get("stages", []) for m in s.get("metrics", [])]
+    return out + list(plan.get("pipeline_metrics", []))
+
+
+def budget_summary(plan: dict[str, Any]) -> dict[str, Any]:
+    live = [m for m in all_metrics(plan) if m.get("status") not in ("rejected", "stale")]
+    pages = [m for m in live if m.get("severity") == "page" and sizing.is_statistical(m)]
+    expected_pages = sum((m.get("sizing") or {}).get("expected_false_alarms_per_week") or 0 for m in pages)
+    expected_tickets = sum(((m.get("sizing") or {}).get("expected_false_warnings_per_week") or 0)
+                           + (((m.get("sizing") or {}).get("expected_false_alarms_per_week") or 0)
+                              if m.get("severity") == "ticket" else 0) for m in live)
+    return {
+        "false_alarms_per_week": plan["false_alarms_per_week"],
+        "page_checks": len(pages),
+        "expected_false_pages_per_week": sizing._sig(expected_pages, 3),
+        "false_tickets_per_week": plan["false_tickets_per_week"],
+        "expected_false_tickets_per_week": sizing._sig(expected_tickets, 3),
+        "split": "even share of the expected false alarms per week for each check (Bonferroni on the count)",
+        "not_counted": "fixed-limit levels and SLO burn-rate alerts, which have no sampling noise to budget",
+    }
+
+
+def dump(plan: dict[str, Any]) -> str:
+    return HEADER + yamlio.dump(plan)
+
+
+def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
+    doc = yamlio.load(path)
+    if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
+        raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
+                              expected="a file written by `stagewatch propose`")
+    yamlio.validate(doc, schema("plan"), validator("plan"))
+    pipeline_of(doc.data, doc)  # the description part, with its own schema and graph checks
+    return doc.data, doc
+
+
+PLAN_ONLY_KEYS = ("plan_version", "pipeline_metrics", "retired_metrics", "budget")
+PLAN_ONLY_STAGE_KEYS = ("metrics", "downstream_reach")
+
+
+def pipeline_of(plan: dict[str, Any], doc: yamlio.Document | None = None) -> Pipeline:
+    """The pipeline description inside a plan, checked against the pipeline schema with the plan's lines."""
+    from stagewatch import spec
+
+    description = {k: v for k, v in plan.items() if k not in PLAN_ONLY_KEYS}
+    description["stages"] = [{k: v for k, v in s.items() if k not in PLAN_ONLY_STAGE_KEYS}
+                             for s in plan["stages"]]
+    pseudo = yamlio.Document(doc.path if doc else "<plan>", description, doc.root if doc else None)
+    pipeline = spec.from_document(pseudo)
+    PipelineGraph.build(pipeline, pseudo)
+    return pipeline
+
+

@@ -1,0 +1,84 @@
+"""`propose`: pipeline description in, plan out, merged with the plan already on disk."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from stagewatch import plan as plan_mod
+from stagewatch import spec, yamlio
+from stagewatch.catalog import load_catalog
+
+
+@dataclass
+class MergeReport:
+    path: str
+    metrics: int
+    added: list[str] = field(default_factory=list)
+    kept_edits: list[str] = field(default_factory=list)
+    refreshed: list[str] = field(default_factory=list)
+    stale: list[str] = field(default_factory=list)
+    flagged: list[str] = field(default_factory=list)
+    expected_false_pages: float = 0.0
+    budget: float = 1.0
+
+    def lines(self) -> list[str]:
+        out = [f"wrote {self.path}: {self.metrics} metrics"]
+        if self.added:
+            out.append(f"  {len(self.added)} new")
+        if self.kept_edits:
+            out.append(f"  {len(self.kept_edits)} with reviewer edits kept as written")
+        if self.refreshed:
+            out.append(f"  {len(self.refreshed)} untouched and refreshed")
+        if self.stale:
+            out.append(f"  {len(self.stale)} stale (their rule no longer applies): " + ", ".join(self.stale[:5])
+                       + (" ..." if len(self.stale) > 5 else ""))
+        if self.flagged:
+            out.append(f"  {len(self.flagged)} flagged for review (see 'review:' in the plan)")
+        out.append(f"  expected false pages per week: {self.expected_false_pages:.3g} "
+                   f"(budget {self.budget:g})")
+        return out
+
+
+def _ids(plan: dict[str, Any] | None) -> dict[str, dict[str, Any]]:
+    if not plan:
+        return {}
+    return {m["id"]: m for m in plan_mod.all_metrics(plan) + plan.get("retired_metrics", [])}
+
+
+def report(path: str, before: dict[str, Any] | None, after: dict[str, Any]) -> MergeReport:
+    old, new = _ids(before), _ids(after)
+    rep = MergeReport(path=path, metrics=len(plan_mod.all_metrics(after)),
+                      expected_false_pages=after["budget"]["expected_false_pages_per_week"] or 0.0,
+                      budget=after["false_alarms_per_week"])
+    for metric_id, metric in new.items():
+        if metric.get("review"):
+            rep.flagged.append(metric_id)
+        if metric_id not in old:
+            rep.added.append(metric_id)
+        elif metric.get("status") == "stale":
+            rep.stale.append(metric_id)
+        elif "fingerprint" not in metric:
+            rep.kept_edits.append(metric_id)
+        else:
+            rep.refreshed.append(metric_id)
+    if before is None:
+        rep.added = []  # a first plan: everything is new, saying so adds nothing
+    return rep
+
+
+def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None = None
+            ) -> tuple[str, MergeReport | None]:
+    """Compose (and merge) the plan; returns its text and, when written to a file, what changed."""
+    pipeline = spec.load_pipeline(pipeline_path)
+    rules = load_catalog(catalog_dir)
+    existing = None
+    if plan_path and Path(plan_path).exists():
+        existing, _ = plan_mod.load_plan(plan_path)
+    composed = plan_mod.compose(pipeline, rules, existing)
+    text = plan_mod.dump(composed)
+    if not plan_path or plan_path == "-":
+        return text, None
+    yamlio.write_atomic(plan_path, text)
+    return text, report(plan_path, existing, composed)

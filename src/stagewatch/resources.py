@@ -1,0 +1,45 @@
+"""Where the shipped data lives: the rule catalog, templates and JSON Schemas.
+
+In a wheel, ``catalog/`` and ``templates/`` are copied inside the package. In a source checkout they sit at the
+repository root, so we look there second.
+"""
+
+from __future__ import annotations
+
+import json
+from functools import lru_cache
+from pathlib import Path
+from typing import Any
+
+_PACKAGE = Path(__file__).resolve().parent
+
+
+def data_dir(name: str) -> Path:
+    inside = _PACKAGE / name
+    if inside.is_dir():
+        return inside
+    checkout = _PACKAGE.parent.parent / name
+    if checkout.is_dir():
+        return checkout
+    raise FileNotFoundError(f"stagewatch is missing its {name}/ directory; reinstall the package")
+
+
+@lru_cache(maxsize=None)
+def schema(kind: str) -> dict[str, Any]:
+    """The JSON Schema for ``kind`` (``pipeline``, ``plan``, ``catalog``, ``checks``)."""
+    return json.loads((_PACKAGE / "schemas" / f"{kind}.schema.json").read_text(encoding="utf-8"))
+
+
+SCHEMA_KINDS = ("pipeline", "plan", "catalog", "checks")
+
+
+@lru_cache(maxsize=None)
+def validator(kind: str) -> Any:
+    """A validator for ``kind`` that resolves references between our schemas without any network."""
+    import jsonschema
+    from referencing import Registry, Resource
+
+    registry = Registry().with_resources(
+        (schema(k)["$id"], Resource.from_contents(schema(k))) for k in SCHEMA_KINDS
+        if (_PACKAGE / "schemas" / f"{k}.schema.json").exists())
+    return jsonschema.Draft202012Validator(schema(kind), registry=registry)

@@ -1,0 +1,318 @@
+"""Windows and thresholds sized by statistics, with the derivation written out.
+
+The check window must be short enough to catch a change at the stage's ``change_rate`` and long enough to hold the
+samples its statistic needs at the stage's volume. The pipeline's false-alarm budget is split evenly over its
+statistical checks (a Bonferroni split of the expected count of false alarms per week); each check's per-evaluation
+alpha sets its noise floor, and no suggested threshold sits below that floor.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+from stagewatch import durations, stats
+from stagewatch.durations import HOUR, WEEK
+
+# Detection target and the longest acceptable window per change rate, in seconds (a design decision, documented
+# in DEVELOPERS.md): a window should be no longer than the time in which the stage's data can move.
+CHANGE_RATE_WINDOWS = {
+    "minutes": (15 * 60, 3600),
+    "hours": (3600, 6 * 3600),
+    "days": (86400, 7 * 86400),
+    "months": (7 * 86400, 30 * 86400),
+}
+LADDER = [durations.parse(w) for w in
+          ("5m", "15m", "30m", "1h", "2h", "3h", "6h", "12h", "1d", "2d", "3d", "7d", "14d", "30d")]
+LONGEST = LADDER[-1]
+POWER = stats.DEFAULT_POWER
+
+
+@dataclass
+class Traffic:
+    """What a metric sees: items per hour, how fast they change, and label timing for quality metrics."""
+
+    per_hour: float
+    change_rate: str
+    label_delay: str | None = None
+    slo_target: float | None = None
+    slo_period: str | None = None
+    latency_slo_ms: float | None = None
+
+
+@dataclass
+class Budget:
+    """Expected false alarms per week allowed for one page check and for one ticket alert."""
+
+    pages_per_week: float
+    tickets_per_week: float
+    page_checks: int
+    ticket_alerts: int
+
+    @property
+    def page_share(self) -> float:
+        return self.pages_per_week / max(self.page_checks, 1)
+
+    @property
+    def ticket_share(self) -> float:
+        return self.tickets_per_week / max(self.ticket_alerts, 1)
+
+
+def is_statistical(metric: dict[str, Any]) -> bool:
+    return metric["statistic"] in stats.STATISTICS
+
+
+def make_budget(metrics: list[dict[str, Any]], pages_per_week: float, tickets_per_week: float) -> Budget:
+    """Count the checks that share each budget: page-severity criticals, and every ticket-level alert."""
+    page = ticket = 0
+    for m in metrics:
+        if not is_statistical(m) or m.get("status") in ("rejected", "stale"):
+            continue
+        if m.get("critical") is not None:
+            if m["severity"] == "page":
+                page += 1
+            else:
+                ticket += 1
+        if m.get("warn") is not None:
+            ticket += 1
+    return Budget(pages_per_week, tickets_per_week, page, ticket)
+
+
+def _sig(x: float | None, digits: int = 4) -> float | int | None:
+    """``x`` to ``digits`` significant digits; whole numbers come back as int so the YAML reads ``9000``."""
+    if x is None or x == 0 or math.isinf(x) or math.isnan(x):
+        return x
+    out = float(f"{x:.{digits}g}")
+    return int(out) if out.is_integer() and abs(out) >= 1 else out
+
+
+def _compact(block: dict[str, Any]) -> dict[str, Any]:
+    return {k: v for k, v in block.items() if v is not None}
+
+
+def round_up(x: float, digits: int = 2) -> float:
+    """``x`` rounded up to ``digits`` significant digits, so a raised threshold stays above its floor."""
+    if x <= 0:
+        return x
+    scale = 10 ** (math.floor(math.log10(x)) - digits + 1)
+    return float(f"{math.ceil(x / scale - 1e-9) * scale:.{digits + 2}g}")
+
+
+def _statistic(metric: dict[str, Any]) -> stats.Statistic:
+    sides = 2 if metric["direction"] == "both" else 1
+    return stats.make(metric["statistic"], sides=sides, **(metric.get("params") or {}))
+
+
+def _reference_samples(reference: str, per_hour: float, n: float) -> float | None:
+    if durations.is_duration(reference):
+        return per_hour * durations.parse(reference) / HOUR
+    if reference == "previous":
+        return n
+    return None  # training set or a fixed reference: taken as known exactly
+
+
+def _fmt(x: float) -> str:
+    if x >= 1000:
+        return f"{x:,.0f}"
+    return f"{x:.3g}"
+
+
+@dataclass
+class _Trial:
+    window: int
+    n: float
+    m: float | None
+    evaluations: float
+    alpha: float
+    floor: float
+    sound: bool
+
+
+REFERENCE_MULTIPLE = 4  # common practice: a reference several times longer than the window it judges
+
+
+def reference_for(reference: str, window: int) -> str:
+    """The reference period, lengthened to at least REFERENCE_MULTIPLE windows when it is a duration."""
+    if durations.is_duration(reference) and durations.parse(reference) < REFERENCE_MULTIPLE * window:
+        return durations.format(REFERENCE_MULTIPLE * window)
+    return reference
+
+
+def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budget: Budget, window: int) -> _Trial:
+    n = traffic.per_hour * window / HOUR
+    reference = metric.get("reference", "28d")
+    if metric.get("window", "auto") == "auto":
+        reference = reference_for(reference, window)
+    m = _reference_samples(reference, traffic.per_hour, n)
+    evaluations = WEEK / window
+    share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
+    alpha = min(0.5, share / evaluations)
+    enough = n >= stat.min_samples()
+    floor = stat.floor(n, m, alpha) if n > 0 else math.inf
+    critical = metric.get("critical")
+    sound = enough and (critical is None or floor <= critical)
+    return _Trial(window, n, m, evaluations, alpha, floor, sound)
+
+
+def size_metric(metric: dict[str, Any], traffic: Traffic, budget: Budget) -> dict[str, Any]:
+    """Choose window and thresholds for one metric and explain them.
+
+    ``metric`` carries ``statistic``, ``params``, ``window`` (``auto`` or a duration), ``reference``, ``warn``,
+    ``critical``, ``direction`` and ``severity``. Returns a dict with ``window``, ``warn``, ``critical``,
+    ``review`` (a reason, or None) and the ``sizing`` block.
+    """
+    statistic = metric["statistic"]
+    if statistic == stats.BURN_RATE:
+        return _size_burn_rate(metric, traffic)
+    if statistic == stats.LEVEL:
+        return _size_level(metric, traffic)
+    return _size_statistical(metric, traffic, budget)
+
+
+def _target(traffic: Traffic) -> tuple[int, int]:
+    return CHANGE_RATE_WINDOWS[traffic.change_rate]
+
+
+def _size_level(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
+    window = metric.get("window", "auto")
+    seconds = _target(traffic)[0] if window == "auto" else durations.parse(window)
+    derivation = (f"A fixed limit on a level ({metric.get('unit', 'value')}): it has no sampling noise to size, "
+                  f"so it fires only when the level crosses the limit. Checked over {durations.format(seconds)}.")
+    return {"window": durations.format(seconds), "warn": metric.get("warn"), "critical": metric.get("critical"),
+            "review": None,
+            "sizing": {"method": "fixed limit", "derivation": derivation}}
+
+
+def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
+    target = traffic.slo_target or 0.999
+    period_s = durations.parse(traffic.slo_period or "30d")
+    alerts = stats.burn_rate_alerts(period_s)
+    fast = alerts[0]
+    slow = alerts[-1]
+    requests = traffic.per_hour * fast["short_window_s"] / HOUR
+    budget_errors = (1 - target) * requests
+    pairs = [{"severity": a["severity"], "long_window": durations.format(a["long_window_s"]),
+              "short_window": durations.format(a["short_window_s"]), "burn_rate": _sig(a["burn_rate"]),
+              "budget_consumed": a["budget_share"]} for a in alerts]
+    objective = f"{target:.4g} of requests"
+    if traffic.latency_slo_ms and "latency" in metric.get("name", metric.get("id", "")):
+        objective += f" faster than {traffic.latency_slo_ms:g} ms"
+    derivation = (
+        f"SLO: {objective} over {durations.format(period_s)}, so the error budget is {1 - target:.3g} of requests. "
+        f"Burn rate = budget share spent x period / window: pages at {_sig(fast['burn_rate'], 3)} over "
+        f"{durations.format(fast['long_window_s'])} (and its {durations.format(fast['short_window_s'])} short window, "
+        f"{fast['budget_share']:.0%} of the budget), and at {_sig(alerts[1]['burn_rate'], 3)} over "
+        f"{durations.format(alerts[1]['long_window_s'])}; opens a ticket at {_sig(slow['burn_rate'], 3)} over "
+        f"{durations.format(slow['long_window_s'])} ({slow['budget_share']:.0%}). Both windows of a pair must exceed "
+        f"the rate, so the alert stops soon after the burn does.")
+    review = None
+    if budget_errors < 1:
+        review = (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} short window: "
+                  f"a single failure exceeds the fast burn rate; consider a longer SLO period or a request-count floor")
+        derivation += f" At {_fmt(traffic.per_hour)} requests per hour the short window holds {_fmt(requests)}."
+    return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
+            "critical": _sig(fast["burn_rate"]), "review": review,
+            "sizing": {"method": "error budget", "slo_target": target, "slo_period": durations.format(period_s),
+                       "samples_per_window": _sig(traffic.per_hour * fast["long_window_s"] / HOUR),
+                       "burn_rate_alerts": pairs,
+                       "derivation": derivation}}
+
+
+def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) -> dict[str, Any]:
+    stat = _statistic(metric)
+    critical = metric.get("critical")
+    warn = metric.get("warn")
+    target, longest = _target(traffic)
+    notes: list[str] = []
+    review = None
+    fixed = metric.get("window", "auto") != "auto"
+    if fixed:
+        chosen = _trial(stat, metric, traffic, budget, durations.parse(metric["window"]))
+        if not chosen.sound:
+            review = "the window set in the plan holds too few samples for this threshold"
+    else:
+        trials = [_trial(stat, metric, traffic, budget, w) for w in LADDER if w >= target]
+        sound = [t for t in trials if t.sound]
+        chosen = sound[0] if sound else trials[-1]
+        if sound and chosen.window > longest:
+            review = (f"volume too low for change rate '{traffic.change_rate}': the shortest sound window is "
+                      f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
+                      f"rate allows; a change would be seen late")
+            notes.append(f"lengthened the window to {durations.format(chosen.window)}, past the "
+                         f"{durations.format(longest)} the change rate allows")
+        elif chosen.window > target:
+            notes.append(f"lengthened the window from the {durations.format(target)} target for change rate "
+                         f"'{traffic.change_rate}' to {durations.format(chosen.window)} so that the noise floor "
+                         f"stays under the threshold")
+    if chosen.n < stat.min_samples():
+        review = (f"only {_fmt(chosen.n)} samples per {durations.format(chosen.window)} window, fewer than the "
+                  f"{stat.min_samples()} this statistic needs; the check is unreliable at this volume")
+    if critical is not None and chosen.floor > critical:
+        raised = round_up(chosen.floor)
+        notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at the "
+                     f"longest window")
+        review = review or (f"volume too low: even a {durations.format(chosen.window)} window needs a threshold of "
+                            f"{raised:g} instead of {critical:g}")
+        critical = raised
+    warn_alpha = warn_floor = None
+    if warn is not None:
+        warn_alpha = min(0.5, budget.ticket_share / chosen.evaluations)
+        warn_floor = stat.floor(chosen.n, chosen.m, warn_alpha)
+        if warn < warn_floor:
+            raised = round_up(warn_floor)
+            if critical is not None and raised >= critical:
+                notes.append(f"dropped the warn level {warn:g}: its noise floor {warn_floor:.3g} reaches the "
+                             f"critical threshold")
+                warn = None
+            else:
+                notes.append(f"raised the warn threshold from {warn:g} to {raised:g}, its noise floor")
+                warn = raised
+    crit_fa = warn_fa = None
+    if critical is not None:
+        crit_fa = stat.false_alarm(critical, chosen.n, chosen.m) * chosen.evaluations
+    if warn is not None:
+        warn_fa = stat.false_alarm(warn, chosen.n, chosen.m) * chosen.evaluations
+    detectable = stat.detectable(chosen.n, chosen.m, chosen.alpha, POWER)
+    window_text = durations.format(chosen.window)
+    reference = metric.get("reference", "28d") if fixed else reference_for(metric.get("reference", "28d"),
+                                                                           chosen.window)
+    if reference != metric.get("reference", "28d"):
+        notes.append(f"lengthened the reference from {metric.get('reference')} to {reference}, "
+                     f"{REFERENCE_MULTIPLE} windows")
+    ref_text = (f"{_fmt(chosen.m)} reference samples ({reference})" if chosen.m is not None
+                else f"a reference taken as exact ({reference})")
+    share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
+    kind = "page" if metric["severity"] == "page" else "ticket"
+    derivation = (
+        f"{_fmt(traffic.per_hour)} items per hour give {_fmt(chosen.n)} samples per {window_text} window against "
+        f"{ref_text}. The {kind} budget allows {share:.3g} false alarms per week for this check, evaluated "
+        f"{_fmt(chosen.evaluations)} times a week, so alpha = {chosen.alpha:.3g} per evaluation. {stat.describe()}; "
+        f"at this alpha the noise floor is {chosen.floor:.3g} ({stat.unit}), and a true change of "
+        f"{detectable:.3g} is caught with {POWER:.0%} power.")
+    if notes:
+        derivation += " Stagewatch " + "; ".join(notes) + "."
+    elif critical is not None:
+        derivation += f" The suggested critical threshold {critical:g} is above the floor."
+    if metric.get("_label_delay"):
+        derivation += (f" Labels arrive {metric['_label_delay']} late, so each window is evaluated "
+                       f"{metric['_label_delay']} after it closes, on labelled items only.")
+    sizing = {
+        "method": "noise floor",
+        "samples_per_window": _sig(chosen.n),
+        "reference_samples": _sig(chosen.m) if chosen.m is not None else None,
+        "evaluations_per_week": _sig(chosen.evaluations),
+        "alpha": _sig(chosen.alpha, 3),
+        "noise_floor": _sig(chosen.floor, 3),
+        "warn_alpha": _sig(warn_alpha, 3),
+        "warn_noise_floor": _sig(warn_floor, 3),
+        "detectable_change": _sig(detectable, 3),
+        "power": POWER,
+        "expected_false_alarms_per_week": _sig(crit_fa, 3),
+        "expected_false_warnings_per_week": _sig(warn_fa, 3),
+        "derivation": derivation,
+    }
+    if metric.get("_label_delay"):
+        sizing["evaluation_lag"] = metric["_label_delay"]
+    return {"window": window_text, "reference": reference, "warn": _sig(warn), "critical": _sig(critical),
+            "review": review, "sizing": _compact(sizing)}

@@ -1,0 +1,369 @@
+"""The statistics that sizing and data checks share: noise floors, false-alarm odds, detectable changes.
+
+Each drift statistic is registered in :data:`STATISTICS` under the name the catalog and plan use. A statistic knows,
+for a check window of ``n`` samples against a reference of ``m`` samples (``m=None`` for a reference known
+exactly):
+
+* ``floor(n, m, alpha)``: the threshold that a window with no real shift exceeds with probability ``alpha``;
+* ``false_alarm(threshold, n, m)``: the probability that a window with no shift exceeds ``threshold``;
+* ``detectable(n, m, alpha, power)``: the smallest true change that exceeds the ``alpha`` floor with probability
+  ``power``.
+
+Nothing here knows about YAML, plans or pipelines.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Protocol
+
+import numpy as np
+from scipy import optimize
+from scipy import stats as st
+
+DEFAULT_POWER = 0.8
+
+
+def effective_n(n: float, m: float | None) -> float:
+    """n m / (n + m): the sample size that matters when two samples are compared; ``n`` if ``m`` is None."""
+    if m is None or math.isinf(m):
+        return float(n)
+    return n * m / (n + m)
+
+
+def _z(alpha: float, sides: int) -> float:
+    return float(st.norm.isf(alpha / sides))
+
+
+def ks_coefficient(alpha: float) -> float:
+    """c(alpha) = sqrt(-ln(alpha / 2) / 2) of the large-sample two-sample KS test (Smirnov 1948).
+
+    >>> round(ks_coefficient(0.05), 3)
+    1.358
+    """
+    return math.sqrt(-math.log(alpha / 2) / 2)
+
+
+def two_proportion_sample_size(p1: float, p2: float, alpha: float = 0.05, power: float = 0.9,
+                               continuity: bool = True) -> float:
+    """Samples per group to tell p1 from p2 with a two-sided test (Fleiss, Tytun & Ury 1980).
+
+    n' = [z(1-a/2) sqrt(2 pbar qbar) + z(1-b) sqrt(p1 q1 + p2 q2)]^2 / (p1 - p2)^2, and with the continuity
+    correction n = (n'/4) [1 + sqrt(1 + 4 / (n' |p1 - p2|))]^2.
+
+    >>> round(two_proportion_sample_size(0.45, 0.25, 0.05, 0.90, continuity=False), 1)
+    117.4
+    """
+    pbar = (p1 + p2) / 2
+    za = _z(alpha, 2)
+    zb = float(st.norm.ppf(power))
+    delta = abs(p1 - p2)
+    n = (za * math.sqrt(2 * pbar * (1 - pbar)) + zb * math.sqrt(p1 * (1 - p1) + p2 * (1 - p2))) ** 2 / delta**2
+    if continuity:
+        n = n / 4 * (1 + math.sqrt(1 + 4 / (n * delta))) ** 2
+    return n
+
+
+class Statistic(Protocol):
+    name: str
+    unit: str
+
+    def floor(self, n: float, m: float | None, alpha: float) -> float: ...
+
+    def false_alarm(self, threshold: float, n: float, m: float | None) -> float: ...
+
+    def detectable(self, n: float, m: float | None, alpha: float, power: float = DEFAULT_POWER) -> float: ...
+
+    def min_samples(self) -> int: ...
+
+    def describe(self) -> str: ...
+
+
+@dataclass
+class PSI:
+    """Population stability index over ``bins`` bins.
+
+    Under no shift, (n m / (n + m)) PSI is approximately chi-square with bins - 1 degrees of freedom
+    (Yurdakul 2018). Under a shift the statistic is approximately non-central chi-square with non-centrality
+    n_eff * PSI_true, which gives the detectable PSI at a given power.
+    """
+
+    bins: int = 10
+    name: str = "psi"
+    unit: str = "PSI"
+
+    def floor(self, n, m, alpha):
+        return float(st.chi2.isf(alpha, self.bins - 1)) / effective_n(n, m)
+
+    def false_alarm(self, threshold, n, m):
+        return float(st.chi2.sf(threshold * effective_n(n, m), self.bins - 1))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        return _noncentral_chi2_effect(self.bins - 1, alpha, power) / effective_n(n, m)
+
+    def min_samples(self):
+        return 5 * self.bins  # common practice: at least 5 expected per bin for the chi-square law
+
+    def describe(self):
+        return (f"n_eff x PSI follows a chi-square law with {self.bins - 1} degrees of freedom when nothing "
+                f"changed ({self.bins} bins)")
+
+
+@dataclass
+class CategoryMix:
+    """Chi-square test of a category mix, thresholds in Cohen's effect size w = sqrt(chi2 / n_eff)."""
+
+    categories: int = 10
+    name: str = "chi_square"
+    unit: str = "effect size w"
+
+    def floor(self, n, m, alpha):
+        return math.sqrt(float(st.chi2.isf(alpha, self.categories - 1)) / effective_n(n, m))
+
+    def false_alarm(self, threshold, n, m):
+        return float(st.chi2.sf(threshold**2 * effective_n(n, m), self.categories - 1))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        return math.sqrt(_noncentral_chi2_effect(self.categories - 1, alpha, power) / effective_n(n, m))
+
+    def min_samples(self):
+        return 5 * self.categories  # common practice: at least 5 expected per category
+
+    def describe(self):
+        return (f"n_eff x w^2 follows a chi-square law with {self.categories - 1} degrees of freedom when the mix "
+                f"did not change ({self.categories} categories)")
+
+
+@dataclass
+class KS:
+    """Two-sample Kolmogorov-Smirnov distance D, large-sample (Kolmogorov distribution) form."""
+
+    name: str = "ks"
+    unit: str = "KS distance D"
+
+    def floor(self, n, m, alpha):
+        return ks_coefficient(alpha) / math.sqrt(effective_n(n, m))
+
+    def false_alarm(self, threshold, n, m):
+        return float(st.kstwobign.sf(threshold * math.sqrt(effective_n(n, m))))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        # D_observed >= D_true - (sampling deviation); the deviation stays below kstwobign.ppf(power) / sqrt(n_eff)
+        # with probability `power`, so this is a conservative bound.
+        return (ks_coefficient(alpha) + float(st.kstwobign.ppf(power))) / math.sqrt(effective_n(n, m))
+
+    def min_samples(self):
+        return 30  # common practice: the large-sample form is used from a few dozen samples on
+
+    def describe(self):
+        return "D > c(alpha) sqrt((n+m)/(n m)) with c(alpha) = sqrt(-ln(alpha/2)/2) (Smirnov 1948)"
+
+
+@dataclass
+class Proportion:
+    """Change of a share (missing, unknown, pass-through, error rate) from a reference share ``baseline``.
+
+    Thresholds are absolute changes of the share. Two-proportion normal approximation.
+    """
+
+    baseline: float = 0.01
+    sides: int = 2
+    name: str = "proportion"
+    unit: str = "change in share"
+
+    def _se0(self, n, m):
+        p = self.baseline
+        inv_m = 0.0 if m is None else 1.0 / m
+        return math.sqrt(p * (1 - p) * (1.0 / n + inv_m))
+
+    def floor(self, n, m, alpha):
+        return _z(alpha, self.sides) * self._se0(n, m)
+
+    def false_alarm(self, threshold, n, m):
+        return min(1.0, self.sides * float(st.norm.sf(threshold / self._se0(n, m))))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        p0 = self.baseline
+        za = _z(alpha, self.sides)
+        zb = float(st.norm.ppf(power))
+        inv_m = 0.0 if m is None else 1.0 / m
+        room = 1 - p0 - 1e-12
+
+        def gap(delta: float) -> float:
+            p1 = p0 + delta
+            w = (1.0 / n) / (1.0 / n + inv_m) if inv_m else 1.0
+            pbar = w * p1 + (1 - w) * p0 if inv_m else p0
+            se_null = math.sqrt(pbar * (1 - pbar) * (1.0 / n + inv_m))
+            se_alt = math.sqrt(p1 * (1 - p1) / n + p0 * (1 - p0) * inv_m)
+            return delta - (za * se_null + zb * se_alt)
+
+        if gap(room) < 0:
+            return float("inf")
+        return float(optimize.brentq(gap, 1e-12, room))
+
+    def min_samples(self):
+        # common practice for the normal approximation: n p >= 10 and n (1 - p) >= 10
+        return math.ceil(10 / min(self.baseline, 1 - self.baseline))
+
+    def describe(self):
+        side = "two-sided" if self.sides == 2 else "one-sided"
+        return f"two-proportion z-test, {side}, at a reference share of {self.baseline:g}"
+
+
+@dataclass
+class Quantile(Proportion):
+    """Shift of a quantile, read as the share of window values beyond the reference ``q``-quantile.
+
+    With no shift that share is 1 - q, so the proportion machinery applies with baseline 1 - q (one-sided).
+    """
+
+    q: float = 0.95
+    name: str = "quantile"
+    unit: str = "change in share beyond the reference quantile"
+
+    def __post_init__(self):
+        self.baseline = 1 - self.q
+        self.sides = 1
+
+    def describe(self):
+        return (f"share of values above the reference {self.q:g}-quantile, one-sided two-proportion z-test "
+                f"against {1 - self.q:g}")
+
+
+@dataclass
+class MeanShift:
+    """Shift of a mean in units of the reference standard deviation (z-test)."""
+
+    sides: int = 2
+    name: str = "mean"
+    unit: str = "reference standard deviations"
+
+    def _se(self, n, m):
+        return math.sqrt(1.0 / n + (0.0 if m is None else 1.0 / m))
+
+    def floor(self, n, m, alpha):
+        return _z(alpha, self.sides) * self._se(n, m)
+
+    def false_alarm(self, threshold, n, m):
+        return min(1.0, self.sides * float(st.norm.sf(threshold / self._se(n, m))))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        return (_z(alpha, self.sides) + float(st.norm.ppf(power))) * self._se(n, m)
+
+    def min_samples(self):
+        return 30  # common practice for a z-test on a mean
+
+    def describe(self):
+        return "z-test on the window mean, in reference standard deviations"
+
+
+@dataclass
+class CountChange:
+    """Relative change of a count against its expected value (Poisson), e.g. rows or requests per window.
+
+    ``n`` is the expected count in the window; ``m`` is ignored (the reference rate is taken as known).
+    """
+
+    sides: int = 2
+    name: str = "count"
+    unit: str = "relative change of the count"
+
+    def floor(self, n, m, alpha):
+        return _z(alpha, self.sides) / math.sqrt(n)
+
+    def false_alarm(self, threshold, n, m):
+        return min(1.0, self.sides * float(st.norm.sf(threshold * math.sqrt(n))))
+
+    def detectable(self, n, m, alpha, power=DEFAULT_POWER):
+        return (_z(alpha, self.sides) + float(st.norm.ppf(power))) / math.sqrt(n)
+
+    def min_samples(self):
+        return 10  # common practice for the normal approximation of a Poisson count
+
+    def describe(self):
+        return ("Poisson count against its expected value (real traffic swings by hour and weekday more than "
+                "Poisson: compare against the same hour of the reference)")
+
+
+def _noncentral_chi2_effect(df: int, alpha: float, power: float) -> float:
+    """Non-centrality at which a chi-square(df) test at level alpha has the given power."""
+    critical = float(st.chi2.isf(alpha, df))
+
+    def gap(lam: float) -> float:
+        return float(st.ncx2.sf(critical, df, lam)) - power
+
+    high = max(1.0, critical)
+    while gap(high) < 0:
+        high *= 2
+    return float(optimize.brentq(gap, 1e-9, high))
+
+
+def make(name: str, **params: float) -> Statistic:
+    """The statistic registered as ``name`` with its parameters (``bins``, ``categories``, ``baseline`` ...)."""
+    factory = STATISTICS[name]
+    accepted = factory.__dataclass_fields__  # type: ignore[attr-defined]
+    return factory(**{k: v for k, v in params.items() if k in accepted and k not in ("name", "unit")})
+
+
+STATISTICS: dict[str, type] = {
+    "psi": PSI,
+    "chi_square": CategoryMix,
+    "ks": KS,
+    "proportion": Proportion,
+    "quantile": Quantile,
+    "mean": MeanShift,
+    "count": CountChange,
+}
+
+# Statistics without sampling noise: a fixed limit on a level (freshness, run failures, NaN count), and SLO
+# burn rates, which are judged against an error budget rather than a null distribution.
+LEVEL = "level"
+BURN_RATE = "burn_rate"
+ALL_STATISTICS = (*STATISTICS, LEVEL, BURN_RATE)
+
+
+# --- values from data (used by data checks and by the tests' simulations) -------------------------------------
+
+
+def psi(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = 0.5) -> float:
+    """PSI = sum((a - e) ln(a / e)) between two binned samples; ``smoothing`` is added to every bin count."""
+    e = np.asarray(reference_counts, dtype=float) + smoothing
+    a = np.asarray(window_counts, dtype=float) + smoothing
+    e /= e.sum()
+    a /= a.sum()
+    return float(np.sum((a - e) * np.log(a / e)))
+
+
+def effect_size_w(reference_counts: np.ndarray, window_counts: np.ndarray) -> float:
+    """Cohen's w for two category mixes: sqrt(chi2 / n_eff), chi2 from the 2 x K contingency table."""
+    table = np.vstack([np.asarray(reference_counts, float), np.asarray(window_counts, float)])
+    table = table[:, table.sum(axis=0) > 0]
+    chi2 = float(st.chi2_contingency(table, correction=False)[0])
+    n_eff = effective_n(table[1].sum(), table[0].sum())
+    return math.sqrt(chi2 / n_eff)
+
+
+# --- SLO burn rates -------------------------------------------------------------------------------------------
+
+# The SRE Workbook's recommended starting points (ch. 5, table 5-8), as (severity, long window, budget share).
+BURN_RATE_WINDOWS = (("page", 3600, 0.02), ("page", 6 * 3600, 0.05), ("ticket", 3 * 86400, 0.10))
+
+
+def burn_rate(budget_share: float, long_window_s: float, period_s: float) -> float:
+    """Burn rate that spends ``budget_share`` of the error budget in ``long_window_s`` of an SLO ``period_s``.
+
+    >>> round(burn_rate(0.02, 3600, 30 * 86400), 1)
+    14.4
+    """
+    return budget_share * period_s / long_window_s
+
+
+def burn_rate_alerts(period_s: float) -> list[dict[str, float | str]]:
+    """Multiwindow, multi-burn-rate alert pairs for an SLO period; the short window is 1/12 of the long one."""
+    out = []
+    for severity, long_s, share in BURN_RATE_WINDOWS:
+        long_s = min(long_s, period_s)
+        out.append({"severity": severity, "long_window_s": long_s, "short_window_s": long_s / 12,
+                    "burn_rate": burn_rate(share, long_s, period_s), "budget_share": share})
+    return out
