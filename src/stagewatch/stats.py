@@ -15,6 +15,7 @@ Nothing here knows about YAML, plans or pipelines.
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from dataclasses import dataclass
 from typing import Protocol
 
@@ -32,8 +33,14 @@ def effective_n(n: float, m: float | None) -> float:
     return n * m / (n + m)
 
 
+@lru_cache(maxsize=4096)
 def _z(alpha: float, sides: int) -> float:
     return float(st.norm.isf(alpha / sides))
+
+
+@lru_cache(maxsize=4096)
+def _chi2_isf(alpha: float, df: int) -> float:
+    return float(st.chi2.isf(alpha, df))
 
 
 def ks_coefficient(alpha: float) -> float:
@@ -94,7 +101,7 @@ class PSI:
     unit: str = "PSI"
 
     def floor(self, n, m, alpha):
-        return float(st.chi2.isf(alpha, self.bins - 1)) / effective_n(n, m)
+        return _chi2_isf(alpha, self.bins - 1) / effective_n(n, m)
 
     def false_alarm(self, threshold, n, m):
         return float(st.chi2.sf(threshold * effective_n(n, m), self.bins - 1))
@@ -119,7 +126,7 @@ class CategoryMix:
     unit: str = "effect size w"
 
     def floor(self, n, m, alpha):
-        return math.sqrt(float(st.chi2.isf(alpha, self.categories - 1)) / effective_n(n, m))
+        return math.sqrt(_chi2_isf(alpha, self.categories - 1) / effective_n(n, m))
 
     def false_alarm(self, threshold, n, m):
         return float(st.chi2.sf(threshold**2 * effective_n(n, m), self.categories - 1))
@@ -146,7 +153,10 @@ class KS:
         return ks_coefficient(alpha) / math.sqrt(effective_n(n, m))
 
     def false_alarm(self, threshold, n, m):
-        return float(st.kstwobign.sf(threshold * math.sqrt(effective_n(n, m))))
+        # The first term of the Kolmogorov series, the same approximation as c(alpha); it bounds the exact
+        # tail (scipy.stats.kstwobign.sf) from above.
+        c = threshold * math.sqrt(effective_n(n, m))
+        return min(1.0, 2 * math.exp(-2 * c * c))
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
         # D_observed >= D_true - (sampling deviation); the deviation stays below kstwobign.ppf(power) / sqrt(n_eff)
@@ -286,9 +296,10 @@ class CountChange:
                 "Poisson: compare against the same hour of the reference)")
 
 
+@lru_cache(maxsize=4096)
 def _noncentral_chi2_effect(df: int, alpha: float, power: float) -> float:
     """Non-centrality at which a chi-square(df) test at level alpha has the given power."""
-    critical = float(st.chi2.isf(alpha, df))
+    critical = _chi2_isf(alpha, df)
 
     def gap(lam: float) -> float:
         return float(st.ncx2.sf(critical, df, lam)) - power

@@ -1,0 +1,88 @@
+"""The command line: every command has help, errors are one message and an exit code, the installed command
+runs the whole flow on the demo."""
+
+from __future__ import annotations
+
+import subprocess
+
+import pytest
+
+from conftest import SMALL, stagewatch_command
+from stagewatch import __version__
+from stagewatch.cli import main
+
+COMMANDS = ["propose", "lint", "render", "explain", "export", "demo", "schema", "interview"]
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_help_on_every_command(command, capsys):
+    with pytest.raises(SystemExit) as info:
+        main([command, "--help"])
+    assert info.value.code == 0
+    assert "usage: stagewatch " + command in capsys.readouterr().out
+
+
+def test_version(capsys):
+    with pytest.raises(SystemExit):
+        main(["--version"])
+    assert capsys.readouterr().out.strip() == f"stagewatch {__version__}"
+
+
+def test_bad_usage_exits_2(capsys):
+    with pytest.raises(SystemExit) as info:
+        main(["propose"])
+    assert info.value.code == 2
+    assert main([]) == 2
+
+
+def test_user_error_is_one_line_without_traceback(write, tmp_path, capsys):
+    source = write("p.yaml", SMALL.replace("serving: online", "serving: onlin"))
+    assert main(["propose", str(source), "-o", str(tmp_path / "plan.yaml")]) == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err and len(err.strip().splitlines()) == 1
+    assert f"{source}:17:" in err and "onlin" in err
+    assert not (tmp_path / "plan.yaml").exists()
+
+
+def test_explain_prints_the_derivation(write, tmp_path, capsys):
+    out = tmp_path / "plan.yaml"
+    assert main(["propose", str(write("p.yaml", SMALL)), "-o", str(out)]) == 0
+    capsys.readouterr()
+    assert main(["explain", str(out), "scorer.output.score_drift"]) == 0
+    text = capsys.readouterr().out
+    assert "noise floor" in text and "alpha" in text and "chi-square" in text
+    assert main(["explain", str(out), "scorer.output.nothing"]) == 2
+
+
+def test_schema_command_prints_json(capsys):
+    import json
+
+    assert main(["schema", "plan"]) == 0
+    assert json.loads(capsys.readouterr().out)["title"] == "stagewatch monitoring plan"
+
+
+def test_installed_command_runs_the_demo_end_to_end(tmp_path):
+    command = stagewatch_command()
+    out = tmp_path / "demo"
+    result = subprocess.run([command, "demo", "-o", str(out)], capture_output=True, text=True, timeout=300)
+    assert result.returncode == 0, result.stderr
+    assert "lint" in result.stdout and "clean" in result.stdout
+    for name in ("pipeline.yaml", "plan.yaml", "plan.md"):
+        assert (out / name).exists() and str(out / name) in result.stdout
+    lint = subprocess.run([command, "lint", str(out / "plan.yaml")], capture_output=True, text=True, timeout=120)
+    assert lint.returncode == 0, lint.stdout
+    # Running the demo again merges into the plan already there.
+    again = subprocess.run([command, "demo", "-o", str(out)], capture_output=True, text=True, timeout=300)
+    assert again.returncode == 0 and "already in" in again.stdout
+
+
+def test_installed_package_carries_its_catalog_and_templates():
+    import stagewatch
+    from stagewatch.resources import data_dir
+
+    package = __import__("pathlib").Path(stagewatch.__file__).parent
+    for name in ("catalog", "templates"):
+        found = data_dir(name)
+        assert any(found.iterdir())
+        if "site-packages" in str(package):  # a real install: the data must be inside the package
+            assert found.parent == package

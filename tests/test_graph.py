@@ -1,0 +1,28 @@
+from __future__ import annotations
+
+import networkx as nx
+
+from stagewatch.graph import PipelineGraph, _reach_counts
+from stagewatch.spec import Pipeline, Stage
+
+
+def _stage(sid, *upstream):
+    return Stage(id=sid, kind="learned", modality="tabular", output="score", serving="online",
+                 volume_per_hour=100, change_rate="days", upstream=list(upstream))
+
+
+def test_order_edges_and_reach_on_a_fan_in():
+    pipeline = Pipeline("p", [_stage("d", "b", "c"), _stage("a"), _stage("b", "a"), _stage("c", "a")])
+    g = PipelineGraph.build(pipeline)
+    assert g.order.index("a") < g.order.index("b") < g.order.index("d")
+    assert set(g.edges) == {("a", "b"), ("a", "c"), ("b", "d"), ("c", "d")}
+    assert g.reach == {"a": 3, "b": 1, "c": 1, "d": 0}
+    assert g.sources == ["a"] and g.sinks == ["d"]
+
+
+def test_reach_counts_agree_with_networkx_descendants():
+    graph = nx.gnp_random_graph(60, 0.08, seed=7, directed=True)
+    dag = nx.DiGraph((u, v) for u, v in graph.edges if u < v)
+    dag.add_nodes_from(range(60))
+    order = list(nx.topological_sort(dag))
+    assert _reach_counts(dag, order) == {n: len(nx.descendants(dag, n)) for n in dag}

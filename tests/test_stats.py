@@ -1,0 +1,237 @@
+"""Statistics against published values, scipy and simulation."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+from scipy import special
+from scipy import stats as st
+
+from stagewatch import stats
+
+RNG_SEED = 20261201
+
+
+@pytest.mark.parametrize("alpha,published", [
+    # Smirnov (1948), Ann. Math. Statist. 19:279-281, large-sample two-sample KS coefficients, as listed in
+    # REFERENCES.md; the issue's short table gives 1.22, 1.36, 1.48, 1.63.
+    (0.10, 1.224), (0.05, 1.358), (0.025, 1.480), (0.01, 1.628), (0.005, 1.731), (0.001, 1.949),
+])
+def test_ks_coefficient_matches_published_table_and_scipy(alpha, published):
+    assert stats.ks_coefficient(alpha) == pytest.approx(published, abs=6e-4)
+    # scipy's limiting Kolmogorov distribution gives the exact quantile; they agree to the 3rd decimal.
+    assert stats.ks_coefficient(alpha) == pytest.approx(st.kstwobign.isf(alpha), abs=1.5e-3)
+
+
+def test_ks_critical_distance_against_scipy_ks_2samp():
+    # At the critical distance, scipy's asymptotic two-sample p-value is alpha.
+    n, m, alpha = 800, 1200, 0.05
+    d = stats.KS().floor(n, m, alpha)
+    assert d == pytest.approx(1.358 * math.sqrt((n + m) / (n * m)), rel=1e-3)
+    rng = np.random.default_rng(RNG_SEED)
+    rejections = 0
+    trials = 1500
+    for _ in range(trials):
+        result = st.ks_2samp(rng.normal(size=n), rng.normal(size=m), method="asymp")
+        rejections += result.statistic > d
+        assert (result.pvalue < alpha) == (result.statistic > d) or abs(result.statistic - d) < 2e-3
+    # No shift: the false-alarm rate stays within alpha (binomial tolerance of 3 standard errors).
+    assert rejections / trials <= alpha + 3 * math.sqrt(alpha * (1 - alpha) / trials)
+
+
+def _psi_numpy(p, q):
+    return float(np.sum((q - p) * np.log(q / p)))
+
+
+@pytest.mark.parametrize("n,m,bins", [(500, 500, 5), (2000, 2000, 10), (5000, 20000, 10), (4000, 4000, 20)])
+def test_psi_noise_floor_chi_square_law_against_simulation(n, m, bins):
+    # Yurdakul (2018): under no shift, n m / (n + m) PSI ~ chi-square(bins - 1). Simulate PSI between two
+    # samples of the same distribution, binned on equal-probability bins, and compare the upper quantiles.
+    rng = np.random.default_rng(RNG_SEED + bins)
+    probs = np.full(bins, 1 / bins)
+    sims = []
+    for _ in range(4000):
+        ref = rng.multinomial(m, probs) / m
+        cur = rng.multinomial(n, probs) / n
+        sims.append(_psi_numpy(ref, cur))
+    sims = np.array(sims)
+    for alpha in (0.10, 0.05, 0.01):
+        floor = stats.PSI(bins=bins).floor(n, m, alpha)
+        assert floor == pytest.approx(st.chi2.isf(alpha, bins - 1) * (n + m) / (n * m))
+        simulated = float(np.quantile(sims, 1 - alpha))
+        assert simulated == pytest.approx(floor, rel=0.12), (alpha, simulated, floor)
+
+
+def test_psi_of_counts_is_the_symmetric_kl_divergence():
+    # PSI = KL(a||e) + KL(e||a) (Jeffreys divergence); scipy.special.rel_entr gives each term.
+    ref = np.array([120, 300, 380, 200])
+    cur = np.array([90, 310, 350, 250])
+    e, a = ref / ref.sum(), cur / cur.sum()
+    expected = float(np.sum(special.rel_entr(a, e)) + np.sum(special.rel_entr(e, a)))
+    assert stats.psi(ref, cur, smoothing=0) == pytest.approx(expected, rel=1e-12)
+
+
+def test_two_proportion_sample_size_worked_example():
+    # Fleiss, Tytun & Ury (1980); Zar, Biostatistical Analysis (1999), example 24.26: p1 = 0.45, p2 = 0.25,
+    # alpha = 0.05 two-sided, power 0.90 -> n' = 117.4, with continuity correction 127.23 (128 per group).
+    assert stats.two_proportion_sample_size(0.45, 0.25, 0.05, 0.90, continuity=False) == pytest.approx(117.4,
+                                                                                                      abs=0.05)
+    corrected = stats.two_proportion_sample_size(0.45, 0.25, 0.05, 0.90)
+    assert corrected == pytest.approx(127.23, abs=0.01)
+    assert math.ceil(corrected) == 128
+
+
+def test_detectable_proportion_change_inverts_the_sample_size_formula():
+    # With equal groups and no continuity correction, the smallest detectable change at n' = 117.4 per group
+    # is the worked example's 0.20 (normal approximation, as Fleiss et al. without the correction).
+    n = stats.two_proportion_sample_size(0.25, 0.45, 0.05, 0.90, continuity=False)
+    delta = stats.Proportion(baseline=0.25, sides=2).detectable(n, n, 0.05, 0.90)
+    assert delta == pytest.approx(0.20, abs=0.002)
+
+
+@pytest.mark.parametrize("long_h,share,published_rate,short_min", [
+    # The Site Reliability Workbook (O'Reilly, 2018), ch. 5, table 5-8: 30-day SLO.
+    (1, 0.02, 14.4, 5), (6, 0.05, 6.0, 30), (72, 0.10, 1.0, 360),
+])
+def test_burn_rates_match_the_sre_workbook(long_h, share, published_rate, short_min):
+    period = 30 * 86400
+    assert stats.burn_rate(share, long_h * 3600, period) == pytest.approx(published_rate)
+    alerts = {a["long_window_s"]: a for a in stats.burn_rate_alerts(period)}
+    alert = alerts[long_h * 3600]
+    assert alert["burn_rate"] == pytest.approx(published_rate)
+    assert alert["short_window_s"] == short_min * 60
+    assert alert["severity"] == ("ticket" if long_h == 72 else "page")
+
+
+# --- simulation: false alarms within alpha, stated power reached ------------------------------------------------
+
+TRIALS = 3000
+ALPHA = 0.05
+POWER = 0.8
+
+
+def _within_alpha(rate):
+    # One-sided binomial tolerance: 3 standard errors at TRIALS draws.
+    return rate <= ALPHA + 3 * math.sqrt(ALPHA * (1 - ALPHA) / TRIALS)
+
+
+def _reaches_power(rate):
+    return rate >= POWER - 3 * math.sqrt(POWER * (1 - POWER) / TRIALS)
+
+
+def test_proportion_false_alarms_and_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED)
+    p0, n, m = 0.05, 3000, 12000
+    stat = stats.Proportion(baseline=p0, sides=1)
+    floor = stat.floor(n, m, ALPHA)
+    delta = stat.detectable(n, m, ALPHA, POWER)
+
+    def rate(p1):
+        ref = rng.binomial(m, p0, TRIALS) / m
+        cur = rng.binomial(n, p1, TRIALS) / n
+        return float(np.mean(cur - ref > floor))
+
+    assert _within_alpha(rate(p0))
+    assert _reaches_power(rate(p0 + delta))
+
+
+def test_mean_shift_false_alarms_and_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED + 1)
+    n, m = 400, 4000
+    stat = stats.MeanShift(sides=2)
+    floor = stat.floor(n, m, ALPHA)
+    shift = stat.detectable(n, m, ALPHA, POWER)
+
+    def rate(mu):
+        ref = rng.normal(0, 1, (TRIALS, m)).mean(axis=1)
+        cur = rng.normal(mu, 1, (TRIALS, n)).mean(axis=1)
+        return float(np.mean(np.abs(cur - ref) > floor))
+
+    assert _within_alpha(rate(0.0))
+    assert _reaches_power(rate(shift))
+
+
+def test_count_false_alarms_and_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED + 2)
+    expected = 2000
+    stat = stats.CountChange(sides=2)
+    floor = stat.floor(expected, None, ALPHA)
+    change = stat.detectable(expected, None, ALPHA, POWER)
+
+    def rate(lam):
+        counts = rng.poisson(lam, TRIALS)
+        return float(np.mean(np.abs(counts - expected) / expected > floor))
+
+    assert _within_alpha(rate(expected))
+    assert _reaches_power(rate(expected * (1 - change)))
+
+
+def test_category_mix_false_alarms_and_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED + 3)
+    k, n, m = 6, 1500, 6000
+    stat = stats.CategoryMix(categories=k)
+    floor = stat.floor(n, m, ALPHA)
+    w = stat.detectable(n, m, ALPHA, POWER)
+    p0 = np.full(k, 1 / k)
+    # A shift of effect size w: p1 = p0 + w * sqrt(p0) * u with u a unit vector orthogonal to sqrt(p0).
+    u = np.array([1, -1, 1, -1, 0, 0]) / 2.0
+    p1 = p0 + w * np.sqrt(p0) * u
+    assert math.sqrt(np.sum((p1 - p0) ** 2 / p0)) == pytest.approx(w)
+
+    def rate(p):
+        hits = 0
+        for _ in range(TRIALS):
+            hits += stats.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p)) > floor
+        return hits / TRIALS
+
+    assert _within_alpha(rate(p0))
+    assert _reaches_power(rate(p1))
+
+
+def test_psi_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED + 4)
+    bins, n, m = 10, 2000, 8000
+    stat = stats.PSI(bins=bins)
+    floor = stat.floor(n, m, ALPHA)
+    target = stat.detectable(n, m, ALPHA, POWER)
+    p0 = np.full(bins, 1 / bins)
+    direction = np.linspace(-1, 1, bins)
+    scale = __import__("scipy").optimize.brentq(
+        lambda s: _psi_numpy(p0, p0 * (1 + s * direction)) - target, 1e-6, 0.99)
+    p1 = p0 * (1 + scale * direction)
+    hits = sum(_psi_numpy(rng.multinomial(m, p0) / m, rng.multinomial(n, p1) / n) > floor for _ in range(TRIALS))
+    assert _reaches_power(hits / TRIALS)
+
+
+def test_ks_power_by_simulation():
+    rng = np.random.default_rng(RNG_SEED + 5)
+    n, m = 600, 2400
+    stat = stats.KS()
+    floor = stat.floor(n, m, ALPHA)
+    d_true = stat.detectable(n, m, ALPHA, POWER)
+    # For a normal location shift s, the true KS distance is 2 Phi(s/2) - 1.
+    shift = 2 * st.norm.ppf((1 + d_true) / 2)
+    hits = sum(st.ks_2samp(rng.normal(0, 1, m), rng.normal(shift, 1, n)).statistic > floor for _ in range(1000))
+    assert hits / 1000 >= POWER - 3 * math.sqrt(POWER * (1 - POWER) / 1000)
+
+
+def test_false_alarm_is_alpha_at_the_floor_for_every_statistic():
+    for name, params in (("psi", {"bins": 8}), ("chi_square", {"categories": 4}), ("ks", {}),
+                         ("proportion", {"baseline": 0.1}), ("quantile", {"q": 0.9}), ("mean", {}),
+                         ("count", {})):
+        stat = stats.make(name, **params)
+        for alpha in (0.1, 1e-3, 1e-6):
+            floor = stat.floor(5000, 50000, alpha)
+            assert stat.false_alarm(floor, 5000, 50000) == pytest.approx(alpha, rel=1e-6), name
+            detectable = stat.detectable(5000, 50000, alpha, 0.8)
+            if name in ("psi", "chi_square"):
+                # The observed statistic carries a no-shift bias of df / n_eff, so the true PSI (or w^2) that is
+                # caught can sit below the floor; its expected observed value may not.
+                df = (params.get("bins") or params.get("categories")) - 1
+                n_eff = stats.effective_n(5000, 50000)
+                observed = detectable + df / n_eff if name == "psi" else math.sqrt(detectable**2 + df / n_eff)
+                assert observed > floor, name
+            else:
+                assert detectable > floor, name
