@@ -86,3 +86,19 @@ def test_installed_package_carries_its_catalog_and_templates():
         assert any(found.iterdir())
         if "site-packages" in str(package):  # a real install: the data must be inside the package
             assert found.parent == package
+
+
+def test_the_readme_example_goes_through_propose_lint_render(tmp_path):
+    # The README's pipeline description, as a new user would copy it.
+    from pathlib import Path
+
+    readme = (Path(__file__).resolve().parent.parent / "README.md").read_text()
+    block = readme.split("## The pipeline description", 1)[1].split("```yaml\n", 1)[1].split("```", 1)[0]
+    source = tmp_path / "pipeline.yaml"
+    source.write_text(block)
+    plan = tmp_path / "plan.yaml"
+    assert main(["propose", str(source), "-o", str(plan)]) == 0
+    assert main(["lint", str(plan)]) == 0
+    assert main(["render", str(plan), "-o", str(tmp_path / "review")]) == 0
+    text = (tmp_path / "review" / "plan.md").read_text()
+    assert "`label_scanner` → `route_classifier`" in text
