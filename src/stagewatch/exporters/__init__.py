@@ -1,0 +1,43 @@
+"""Exporters: turn a plan into configuration that monitoring systems load.
+
+Each exporter registers under the name ``--to`` takes and satisfies :class:`Exporter`: a function that writes its
+files and returns one line per file written.
+"""
+
+from __future__ import annotations
+
+from typing import Any, Callable, Protocol
+
+from stagewatch.plan import all_metrics, load_plan
+
+
+class Exporter(Protocol):
+    def __call__(self, plan: dict[str, Any], target: str) -> list[str]: ...
+
+
+def _prometheus(plan: dict[str, Any], target: str) -> list[str]:
+    from stagewatch.exporters.prometheus import export_prometheus
+
+    return export_prometheus(plan, target)
+
+
+def _checks(plan: dict[str, Any], target: str) -> list[str]:
+    from stagewatch.exporters.checks import export_checks
+
+    return export_checks(plan, target)
+
+
+EXPORTERS: dict[str, Callable[[dict[str, Any], str], list[str]]] = {
+    "prometheus": _prometheus,
+    "checks": _checks,
+}
+
+
+def live_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
+    """The metrics an export carries: accepted or proposed, never rejected or stale."""
+    return [m for m in all_metrics(plan) if m["status"] in ("accepted", "proposed")]
+
+
+def export(plan_path: str, to: str, target: str) -> list[str]:
+    plan, _ = load_plan(plan_path)
+    return EXPORTERS[to](plan, target)

@@ -1,0 +1,42 @@
+"""A neutral JSON check configuration: one entry per check, for `stagewatch check` and for other schedulers."""
+
+from __future__ import annotations
+
+import json
+from typing import Any
+
+import jsonschema
+
+from stagewatch import yamlio
+from stagewatch.exporters import live_metrics
+from stagewatch.resources import validator
+
+CHECKS_VERSION = 1
+
+
+def checks_document(plan: dict[str, Any]) -> dict[str, Any]:
+    checks = []
+    for m in live_metrics(plan):
+        stage, layer, name = m["id"].split(".", 2)
+        sizing = m.get("sizing") or {}
+        entry: dict[str, Any] = {
+            "id": m["id"], "stage": stage, "layer": layer, "name": name, "status": m["status"],
+            "measure": m.get("measure", ""), "field": m.get("field"), "edge": m.get("edge"),
+            "statistic": m["statistic"], "params": m.get("params") or {}, "window": m["window"],
+            "reference": m.get("reference"), "warn": m.get("warn"), "critical": m.get("critical"),
+            "direction": m["direction"], "severity": m["severity"], "catches": m.get("catches", []),
+            "evaluation_lag": sizing.get("evaluation_lag"), "alpha": sizing.get("alpha"),
+            "noise_floor": sizing.get("noise_floor"), "source": m.get("source"),
+        }
+        checks.append({k: v for k, v in entry.items() if v is not None})
+    return {"checks_version": CHECKS_VERSION, "pipeline": plan["pipeline"], "checks": checks}
+
+
+def export_checks(plan: dict[str, Any], target: str) -> list[str]:
+    document = checks_document(plan)
+    try:
+        validator("checks").validate(document)
+    except jsonschema.ValidationError as exc:  # our own output must meet our own schema
+        raise AssertionError(f"checks export breaks its schema: {exc.message}") from exc
+    yamlio.write_atomic(target, json.dumps(document, indent=2) + "\n")
+    return [f"wrote {target}: {len(document['checks'])} checks (JSON, schema: `stagewatch schema checks`)"]

@@ -1,0 +1,469 @@
+"""Prometheus export: rule files (one group per stage and one for the pipeline), promtool rule unit tests,
+an Alertmanager configuration with inhibition along the pipeline graph, and the instrumentation spec.
+
+Everything is built in memory first and written at the end, so a failure writes nothing.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import networkx as nx
+
+from stagewatch import durations, yamlio
+from stagewatch.exporters import live_metrics
+from stagewatch.exporters.signals import FAMILIES, CounterLevelSignal, Series, Signal, counter, signal_for
+from stagewatch.plan import all_metrics
+
+PIPELINE_STAGE = "pipeline"
+SLO_WINDOWS = ("5m", "30m", "1h", "6h", "3d")
+
+FIRST_RESPONSE = {
+    "software": "Check the stage's recent deploys, its dependencies and its resource use; roll back if a change "
+                "lines up with the start.",
+    "input": "Look at the upstream stage's output alerts first (the same statistic is checked on both sides of "
+             "the hand-off); if upstream is quiet, look for a change in the source: new sensor, supplier, client.",
+    "output": "Compare with this stage's input alerts: if inputs moved too, follow them upstream; if not, the "
+              "stage itself changed (model, rules, configuration) or the world did (concept drift).",
+}
+
+
+def alert_name(metric_id: str) -> str:
+    """CamelCase alert name from a metric id: ``frame_gate.output.pass_rate`` -> ``FrameGateOutputPassRate``."""
+    return "".join(part[:1].upper() + part[1:] for part in re.split(r"[^A-Za-z0-9]+", metric_id) if part)
+
+
+def _inert(text: Any) -> str:
+    """Free text for an annotation: Prometheus expands Go templates, so template delimiters are broken up."""
+    return re.sub(r"\s+", " ", str(text or "")).replace("{{", "{ {").replace("}}", "} }").strip()
+
+
+def _matcher_value(text: str) -> str:
+    return text.replace("\\", "\\\\").replace('"', '\\"')
+
+
+def _receiver(text: str) -> str:
+    return re.sub(r"[^A-Za-z0-9_.-]+", "-", text).strip("-") or "team"
+
+
+def _fmt(x: float) -> str:
+    return f"{x:.10g}"
+
+
+def _compare(value: str, metric: dict[str, Any], threshold: float, level_reading: bool) -> str:
+    t = _fmt(threshold)
+    direction = metric["direction"]
+    if level_reading:
+        return f"{value} {'<=' if direction == 'below' else '>='} {t}"
+    if direction == "above":
+        return f"{value} > {t}"
+    if direction == "below":
+        return f"{value} < -{t}"
+    return f"abs({value}) > {t}"
+
+
+@dataclass
+class GroupExport:
+    name: str
+    stage: str
+    file: str
+    rules: list[dict[str, Any]] = field(default_factory=list)
+    cases: list["Case"] = field(default_factory=list)
+    alerts: int = 0
+
+    def tests(self) -> dict[str, list[dict[str, Any]]]:
+        """promtool tests by sample step: all checks that share a step and a variant run in one test.
+
+        Every check has its own series (its ``check`` label, or its own families for SLOs), so they do not
+        interfere; one test per variant keeps promtool's cost at (steps x rules) instead of (checks x steps x
+        rules).
+        """
+        merged: dict[tuple[int, str], dict[str, Any]] = {}
+        for case in self.cases:
+            test = merged.setdefault((case.step, case.variant), {
+                "name": f"{self.stage}: {case.variant}", "interval": durations.format(case.step),
+                "input_series": [], "alert_rule_test": []})
+            test["input_series"].extend(case.series)
+            test["alert_rule_test"].extend(case.alert_tests)
+        out: dict[str, list[dict[str, Any]]] = {}
+        for (step, _), test in sorted(merged.items()):
+            test["alert_rule_test"].sort(key=lambda t: (durations.parse(t["eval_time"]), t["alertname"]))
+            out.setdefault(durations.format(step), []).append(test)
+        return out
+
+
+@dataclass
+class Case:
+    step: int
+    variant: str
+    series: list[dict[str, str]]
+    alert_tests: list[dict[str, Any]]
+
+
+def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str) -> dict[str, str]:
+    drift = metric["layer"] in ("input", "output") and bool(
+        set(metric.get("catches", [])) & {"data-drift", "concept-drift", "upstream-change"})
+    labels = {"severity": severity, "level": level, "layer": metric["layer"], "drift": "true" if drift else "false"}
+    if owner:
+        labels["owner"] = owner
+    return labels
+
+
+def _annotations(metric: dict[str, Any], level: str, threshold: float) -> dict[str, str]:
+    return {
+        "summary": _inert(f"{metric['id']}: {metric.get('measure', '')} beyond {level} threshold "
+                          f"{_fmt(threshold)} ({metric.get('unit', '')}) over {metric['window']}"),
+        "description": _inert(metric.get("why", "")),
+        "first_response": _inert(FIRST_RESPONSE[metric["layer"]]),
+        "plan_metric": metric["id"],
+    }
+
+
+def _series_lines(series: Series) -> list[dict[str, str]]:
+    def fmt(v: float | None) -> str:
+        return "_" if v is None else _fmt(round(v, 9))
+    return [{"series": key, "values": " ".join(fmt(v) for v in values)} for key, values in series.values.items()]
+
+
+def _step(window: str) -> int:
+    """Sample step of a rule test: a tenth of the window, whole minutes (promtool cost grows with eval steps)."""
+    return max(60, int(durations.parse(window) / 10) // 60 * 60)
+
+
+def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group: GroupExport) -> None:
+    value = f'stagewatch:check_value{{pipeline="{sig.pipeline}", stage="{sig.stage}", check="{sig.check}"}}'
+    name = alert_name(metric["id"])
+    levels = []
+    if metric.get("warn") is not None:
+        levels.append(("warn", "ticket", metric["warn"]))
+    if metric.get("critical") is not None:
+        levels.append(("critical", metric["severity"], metric["critical"]))
+    expected: dict[str, dict[str, Any]] = {}
+    for level, severity, threshold in levels:
+        rule: dict[str, Any] = {"alert": name, "expr": _compare(value, metric, threshold, sig.level_reading)}
+        if sig.for_ != "0s":
+            rule["for"] = sig.for_
+        rule["labels"] = _labels(metric, owner, level, severity)
+        rule["annotations"] = _annotations(metric, level, threshold)
+        group.rules.append(rule)
+        group.alerts += 1
+        base = {"pipeline": sig.pipeline, "stage": sig.stage, "check": sig.check}
+        expected[level] = {"exp_labels": {**base, **rule["labels"]}, "exp_annotations": rule["annotations"]}
+    group.cases.extend(_signal_tests(sig, metric, name, levels, expected))
+
+
+def _fault_value(sig: Signal, metric: dict[str, Any], magnitude: float) -> float | None:
+    """A statistic value of size ``magnitude`` in the direction the alert watches, if the signal can produce it."""
+    direction = metric["direction"]
+    if sig.level_reading:
+        candidates = [magnitude]
+    elif direction == "above":
+        candidates = [magnitude]
+    elif direction == "below":
+        candidates = [-magnitude]
+    else:
+        candidates = [magnitude, -magnitude]
+    for value in candidates:
+        if sig.feasible(value):  # type: ignore[attr-defined]
+            return value
+    return None
+
+
+def _signal_tests(sig: Signal, metric: dict[str, Any], name: str, levels: list[tuple[str, str, float]],
+                  expected: dict[str, dict[str, Any]]) -> list[Case]:
+    if not levels:
+        return []
+    step = _step(metric["window"])
+    window_steps = math.ceil(durations.parse(metric["window"]) / step)
+    for_steps = math.ceil(durations.parse(sig.for_) / step) if sig.for_ != "0s" else 0
+    start = window_steps + 2
+    if isinstance(sig, CounterLevelSignal):
+        eval_index = start + max(1, window_steps // 2)  # the events must still lie inside the window
+    else:
+        eval_index = start + window_steps + for_steps + 1
+    steps = eval_index + 2
+    eval_time = durations.format(eval_index * step)
+    critical = metric.get("critical")
+    warn = metric.get("warn")
+    tests = []
+    top = max(t for _, _, t in levels)
+    if isinstance(sig, CounterLevelSignal):
+        magnitude = top
+    elif sig.level_reading and metric["direction"] == "below":
+        magnitude = min(t for _, _, t in levels) * 0.5
+    else:
+        magnitude = top * 1.5
+    cases = [("fault", _fault_value(sig, metric, magnitude), [lvl for lvl, _, _ in levels])]
+    if warn is not None and critical is not None and not isinstance(sig, CounterLevelSignal):
+        between = (warn + critical) / 2
+        cases.append(("warn only", _fault_value(sig, metric, between), ["warn"]))
+    quiet_time = durations.format((start - 1) * step)
+    for label, value, firing in cases:
+        if value is None:
+            raise ValueError(f"cannot simulate a fault of {magnitude:g} for {metric['id']}")
+        # One series per check: a full window of normal data (the alert must stay quiet), then the fault.
+        variant = "quiet while normal, then a fault past every threshold" if label == "fault" else (
+            "quiet while normal, then a fault between warn and critical")
+        tests.append(Case(step, variant, _series_lines(sig.simulate(value, steps, start, step)), [
+            {"eval_time": quiet_time, "alertname": name, "exp_alerts": []},
+            {"eval_time": eval_time, "alertname": name, "exp_alerts": [expected[lvl] for lvl in firing]}]))
+    return tests
+
+
+def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: dict[str, Any],
+                owner: str | None, group: GroupExport) -> None:
+    sizing = metric.get("sizing") or {}
+    target = sizing.get("slo_target") or stage_info.get("slo_target") or 0.999
+    budget = 1 - target
+    s = f'{{pipeline="{pipeline}", stage="{stage}"}}'
+    latency = "latency" in metric["id"]
+    slo_s = (stage_info.get("latency_slo_ms") or 0) / 1000
+    le = f"{slo_s:g}"
+    pairs = sizing.get("burn_rate_alerts") or []
+    windows = sorted({p["long_window"] for p in pairs} | {p["short_window"] for p in pairs} | set(SLO_WINDOWS),
+                     key=durations.parse)
+    record = "stagewatch:slo_latency_miss_ratio" if latency else "stagewatch:slo_error_ratio"
+    for w in windows:
+        if latency:
+            expr = (f'1 - sum by (pipeline, stage) (rate(stagewatch_request_duration_seconds_bucket'
+                    f'{{pipeline="{pipeline}", stage="{stage}", le="{le}"}}[{w}]))\n'
+                    f"  / sum by (pipeline, stage) (rate(stagewatch_request_duration_seconds_count{s}[{w}]))")
+        else:
+            expr = (f"sum by (pipeline, stage) (rate(stagewatch_request_errors_total{s}[{w}]))\n"
+                    f"  / sum by (pipeline, stage) (rate(stagewatch_requests_total{s}[{w}]))")
+        group.rules.append({"record": f"{record}:rate{w}", "expr": expr, "labels": {"check": metric["id"]}})
+    sel = f'{{pipeline="{pipeline}", stage="{stage}", check="{metric["id"]}"}}'
+    name = alert_name(metric["id"])
+    expected = {}
+    for severity, level in (("page", "critical"), ("ticket", "warn")):
+        mine = [p for p in pairs if p["severity"] == severity]
+        if not mine:
+            continue
+        clauses = [f"({record}:rate{p['long_window']}{sel} > {_fmt(p['burn_rate'] * budget)}\n"
+                   f"   and {record}:rate{p['short_window']}{sel} > {_fmt(p['burn_rate'] * budget)})" for p in mine]
+        threshold = min(p["burn_rate"] for p in mine)
+        rule = {"alert": name, "expr": "\n  or ".join(clauses), "labels": _labels(metric, owner, level, severity),
+                "annotations": _annotations(metric, level, threshold)}
+        rule["annotations"]["summary"] = _inert(
+            f"{metric['id']}: error budget of the {target:g} SLO burning at more than {_fmt(threshold)}x "
+            f"({', '.join(p['long_window'] + '/' + p['short_window'] for p in mine)})")
+        group.rules.append(rule)
+        group.alerts += 1
+        expected[level] = {"exp_labels": {"pipeline": pipeline, "stage": stage, "check": metric["id"],
+                                          **rule["labels"]}, "exp_annotations": rule["annotations"]}
+    fast = max((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=14.4)
+    slow = min((p["burn_rate"] for p in pairs if p["severity"] == "ticket"), default=1.0)
+    page_min = min((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=6.0)
+    cases = [("fast burn", 0, min(0.5, fast * budget * 5), list(expected)),
+             ("slow burn", None, min(0.9, (slow + page_min) / 2 * budget), [lvl for lvl in expected if lvl == "warn"]),
+             ("within budget", None, budget * 0.1, [])]
+    for label, _, ratio, firing in cases:
+        steps = 22
+        start = 10 if label == "fast burn" else 0
+        eval_index = 20
+        ratios = [0.0 if i < start else ratio for i in range(steps)]
+        series = Series()
+        if latency:
+            series.add(f'stagewatch_request_duration_seconds_count{{pipeline="{pipeline}", stage="{stage}"}}',
+                       counter([1000.0] * steps))
+            series.add(f'stagewatch_request_duration_seconds_bucket{{pipeline="{pipeline}", stage="{stage}", '
+                       f'le="{le}"}}', counter([1000.0 * (1 - r) for r in ratios]))
+        else:
+            series.add(f'stagewatch_requests_total{{pipeline="{pipeline}", stage="{stage}"}}',
+                       counter([1000.0] * steps))
+            series.add(f'stagewatch_request_errors_total{{pipeline="{pipeline}", stage="{stage}"}}',
+                       counter([1000.0 * r for r in ratios]))
+        variant = {"fast burn": "SLO: fast burn pages and tickets",
+                   "slow burn": "SLO: slow burn opens a ticket only",
+                   "within budget": "SLO: burning within budget stays quiet"}[label]
+        group.cases.append(Case(60, variant, _series_lines(series), [
+            {"eval_time": durations.format(eval_index * 60), "alertname": name,
+             "exp_alerts": [expected[lvl] for lvl in firing]}]))
+
+
+@dataclass
+class PrometheusExport:
+    groups: list[GroupExport]
+    alertmanager: dict[str, Any]
+    instrumentation: dict[str, Any]
+
+
+def build(plan: dict[str, Any]) -> PrometheusExport:
+    pipeline = plan["pipeline"]
+    live = {m["id"] for m in live_metrics(plan)}
+    groups = []
+    owners: set[str] = set()
+    blocks = [(s["id"], s, s.get("metrics", [])) for s in plan["stages"]]
+    blocks.append((PIPELINE_STAGE, {"id": PIPELINE_STAGE}, plan.get("pipeline_metrics", [])))
+    families: dict[str, dict[str, Any]] = {}
+    for stage_id, info, metrics in blocks:
+        owner = info.get("owner") or plan.get("owner")
+        if owner:
+            owners.add(owner)
+        group = GroupExport(name=f"stagewatch-{pipeline}-{stage_id}", stage=stage_id,
+                            file=f"{stage_id}.rules.yml")
+        for metric in metrics:
+            if metric["id"] not in live:
+                continue
+            if metric["statistic"] == "burn_rate":
+                _slo_alerts(metric, pipeline, stage_id, info, owner, group)
+                fams = [FAMILIES["latency"] if "latency" in metric["id"] else FAMILIES["requests"]]
+                if "latency" not in metric["id"]:
+                    fams.append(FAMILIES["errors"])
+            else:
+                sig = signal_for(metric, pipeline, stage_id, info)
+                assert sig is not None
+                group.rules.extend(sig.recording())
+                _signal_alerts(sig, metric, owner, group)
+                fams = sig.families()
+            for fam in fams:
+                entry = families.setdefault(fam.name, {"name": fam.name, "type": fam.type, "labels": list(fam.labels),
+                                                       "help": fam.help, "uses": []})
+                use = {"stage": stage_id, "check": metric["id"], "statistic": metric["statistic"]}
+                if fam.name == "stagewatch_check_bin_items_total":
+                    params = metric.get("params") or {}
+                    use["bins"] = params.get("bins") or params.get("categories") or 10
+                if fam.name == "stagewatch_request_duration_seconds":
+                    use["bucket_le"] = f"{(info.get('latency_slo_ms') or 0) / 1000:g}"
+                if metric.get("field"):
+                    use["field"] = metric["field"]
+                if metric["statistic"] in ("proportion", "quantile") and fam.name == "stagewatch_reference_share":
+                    sig_any = signal_for(metric, pipeline, stage_id, info)
+                    use["reference_share"] = sig_any.baseline()  # type: ignore[union-attr]
+                entry["uses"].append(use)
+        groups.append(group)
+    instrumentation = {"pipeline": pipeline, "families": sorted(families.values(), key=lambda f: f["name"]),
+                       "stages": [s["id"] for s in plan["stages"]] + [PIPELINE_STAGE],
+                       "checks": {m["id"]: {"statistic": m["statistic"], "window": m["window"],
+                                            "warn": m.get("warn"), "critical": m.get("critical"),
+                                            "direction": m["direction"], "measure": m.get("measure", "")}
+                                  for m in all_metrics(plan) if m["id"] in live}}
+    return PrometheusExport(groups, alertmanager_config(plan, sorted(owners)), instrumentation)
+
+
+def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, Any]:
+    pipeline = plan["pipeline"]
+    graph = nx.DiGraph()
+    graph.add_nodes_from(s["id"] for s in plan["stages"])
+    graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []))
+    order = {s["id"]: i for i, s in enumerate(plan["stages"])}
+    inhibit = [{
+        # A critical alert hides the warn alert of the same check.
+        "source_matchers": ['level="critical"'], "target_matchers": ['level="warn"'],
+        "equal": ["alertname", "pipeline", "stage"],
+    }]
+    for stage in plan["stages"]:
+        below = sorted(nx.descendants(graph, stage["id"]), key=order.get)
+        if not below:
+            continue
+        inhibit.append({
+            "source_matchers": [f'pipeline="{_matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
+                                'level="critical"'],
+            "target_matchers": [f'pipeline="{_matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
+                                'drift="true"'],
+            "equal": ["pipeline"],
+        })
+    receivers = [{"name": "stagewatch-default",
+                  "webhook_configs": [{"url": "http://127.0.0.1:9095/stagewatch/default"}]}]
+    routes = []
+    for owner in owners:
+        child = []
+        for severity in ("page", "ticket"):
+            name = f"{_receiver(owner)}-{severity}"
+            receivers.append({"name": name, "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{name}"}]})
+            child.append({"receiver": name, "matchers": [f'severity="{severity}"']})
+        routes.append({"receiver": f"{_receiver(owner)}-ticket", "matchers": [f'owner="{_matcher_value(owner)}"'],
+                       "routes": child})
+    for severity in ("page", "ticket"):
+        receivers.append({"name": f"stagewatch-{severity}",
+                          "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{severity}"}]})
+        routes.append({"receiver": f"stagewatch-{severity}", "matchers": [f'severity="{severity}"']})
+    return {
+        "route": {"receiver": "stagewatch-default", "group_by": ["pipeline", "stage", "alertname"],
+                  "group_wait": "30s", "group_interval": "5m", "repeat_interval": "4h", "routes": routes},
+        "inhibit_rules": inhibit,
+        "receivers": receivers,
+    }
+
+
+RULES_HEADER = "# Generated by `stagewatch export --to prometheus` from the plan; edit the plan, then re-export.\n"
+AM_HEADER = ("# Generated by stagewatch: routing by owner and severity, inhibition along the pipeline graph.\n"
+             "# The webhook URLs are placeholders: point them at your pager and ticket integrations.\n")
+
+
+def instrumentation_markdown(instr: dict[str, Any]) -> str:
+    lines = [f"# Instrumentation for {instr['pipeline']}", "",
+             "What each stage must emit for the exported rules to work. Every series carries the labels `pipeline` "
+             "and `stage`; per-check series also carry `check` (the plan metric id). Reference gauges are "
+             "published from calibrated reference data; `stagewatch_check_statistic` by the data checks.", "",
+             "| Metric | Type | Labels | What it is |", "|---|---|---|---|"]
+    for fam in instr["families"]:
+        lines.append(f"| `{fam['name']}` | {fam['type']} | {', '.join(fam['labels'])} | {fam['help']} |")
+    lines += ["", "## Per stage", ""]
+    by_stage: dict[str, list[tuple[str, dict[str, Any]]]] = {}
+    for fam in instr["families"]:
+        for use in fam["uses"]:
+            by_stage.setdefault(use["stage"], []).append((fam["name"], use))
+    for stage in instr["stages"]:
+        uses = by_stage.get(stage, [])
+        if not uses:
+            continue
+        lines += [f"### `{stage}`", "", "| Metric | check | Notes |", "|---|---|---|"]
+        for name, use in uses:
+            notes = []
+            if "bins" in use:
+                notes.append(f"{use['bins']} bins, `bin` = 0..{int(use['bins']) - 1}")
+            if "bucket_le" in use:
+                notes.append(f"needs bucket le={use['bucket_le']}")
+            if "field" in use:
+                notes.append(f"field `{use['field']}`")
+            if "reference_share" in use:
+                notes.append(f"reference share until calibrated: {use['reference_share']:g}")
+            check = use["check"] if name not in ("stagewatch_requests_total", "stagewatch_request_errors_total",
+                                                 "stagewatch_request_duration_seconds") else "(none)"
+            lines.append(f"| `{name}` | `{check}` | {'; '.join(notes)} |")
+        lines.append("")
+    return "\n".join(lines) + "\n"
+
+
+def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
+    built = build(plan)
+    out = Path(target)
+    files: dict[Path, str] = {}
+    test_files = []
+    for group in built.groups:
+        if not group.rules:
+            continue
+        files[out / "rules" / group.file] = RULES_HEADER + yamlio.dump({"groups": [{"name": group.name,
+                                                                                   "rules": group.rules}]})
+        # One test file per sample step: promtool evaluates every rule of the file at each evaluation_interval up
+        # to the last eval_time, so a day-long window is tested at a coarse step and a 5m window at 1m.
+        by_step = group.tests()
+        for interval in sorted(by_step, key=durations.parse):
+            name = group.file.replace(".rules.yml", f".{interval}.test.yml")
+            test_file = out / "tests" / name
+            files[test_file] = RULES_HEADER + yamlio.dump({
+                "rule_files": [f"../rules/{group.file}"], "evaluation_interval": interval,
+                "tests": by_step[interval]})
+            test_files.append(test_file)
+    files[out / "alertmanager.yml"] = AM_HEADER + yamlio.dump(built.alertmanager)
+    files[out / "instrumentation.json"] = json.dumps(built.instrumentation, indent=2) + "\n"
+    files[out / "instrumentation.md"] = instrumentation_markdown(built.instrumentation)
+    example = Path(__file__).with_name("example_exporter.py")
+    files[out / "example_exporter.py"] = example.read_text(encoding="utf-8")
+    del test_files
+    for path, text in files.items():
+        yamlio.write_atomic(path, text)
+    alerts = sum(g.alerts for g in built.groups)
+    checked = sum(len(t["alert_rule_test"]) for g in built.groups for ts in g.tests().values() for t in ts)
+    return [f"wrote {out / 'rules'}/: {sum(1 for g in built.groups if g.rules)} rule groups, {alerts} alerting rules",
+            f"wrote {out / 'tests'}/: promtool unit tests, {checked} alert evaluations (run: promtool test rules "
+            f"{out / 'tests'}/*.yml)",
+            f"wrote {out / 'alertmanager.yml'}: routing by owner and severity, "
+            f"{len(built.alertmanager['inhibit_rules'])} inhibition rules",
+            f"wrote {out / 'instrumentation.md'} and instrumentation.json: the series each stage must emit"]

@@ -1,0 +1,490 @@
+"""How each plan metric becomes Prometheus series, a PromQL value, and synthetic series for rule unit tests.
+
+Every signal yields one value per check, with labels ``pipeline``, ``stage`` and ``check`` (the plan metric id),
+recorded as ``stagewatch:check_value``; alerts compare that value with the plan's thresholds. Drift statistics are
+sizes of change: shares and counts are recorded as signed changes against the reference, PSI and w as distances.
+
+Where the reference comes from: a gauge (``stagewatch_reference_share``, ``stagewatch_reference_items_per_second``,
+``stagewatch_reference_seconds``) published from calibrated reference data, never a 28-day range query in PromQL.
+KS distances and mean shifts need the reference's full distribution or variance, so the data checks publish them as
+``stagewatch_check_statistic``; PSI and category mixes are computed in PromQL from per-bin counters.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
+
+from stagewatch import durations
+
+SMOOTH = 1e-4  # floor for shares inside ln(): an empty bin counts as a share of 1e-4
+BINS_DEFAULT = 10
+
+
+@dataclass(frozen=True)
+class Family:
+    name: str
+    type: str  # counter | gauge | histogram
+    labels: tuple[str, ...]
+    help: str
+
+
+FAMILIES = {
+    "items": Family("stagewatch_check_items_total", "counter", ("pipeline", "stage", "check"),
+                    "Items a check examined (the denominator of its share, or what a count check counts)."),
+    "matches": Family("stagewatch_check_matches_total", "counter", ("pipeline", "stage", "check"),
+                      "Items that met the check's condition (missing, unknown, out of range, passed, failed run ...)."),
+    "bins": Family("stagewatch_check_bin_items_total", "counter", ("pipeline", "stage", "check", "bin"),
+                   "Items per bin of a distribution check; bin edges come from the calibrated reference."),
+    "ref_share": Family("stagewatch_reference_share", "gauge", ("pipeline", "stage", "check", "bin"),
+                        "Reference share of a check (per bin for distribution checks; no bin label for shares)."),
+    "ref_rate": Family("stagewatch_reference_items_per_second", "gauge", ("pipeline", "stage", "check"),
+                       "Reference rate of a count check, items per second."),
+    "ref_seconds": Family("stagewatch_reference_seconds", "gauge", ("pipeline", "stage", "check"),
+                          "Reference duration of a check (median run or inference time), in seconds."),
+    "statistic": Family("stagewatch_check_statistic", "gauge", ("pipeline", "stage", "check"),
+                        "Statistic computed by `stagewatch check` on the latest window (KS distance, mean shift)."),
+    "requests": Family("stagewatch_requests_total", "counter", ("pipeline", "stage"), "Requests served."),
+    "errors": Family("stagewatch_request_errors_total", "counter", ("pipeline", "stage"), "Requests that failed."),
+    "latency": Family("stagewatch_request_duration_seconds", "histogram", ("pipeline", "stage"),
+                      "Request latency; needs a bucket boundary at the stage's latency SLO."),
+    "saturation": Family("stagewatch_saturation_ratio", "gauge", ("pipeline", "stage"),
+                         "Use of the busiest resource as a share of its capacity (0..1)."),
+    "last_success": Family("stagewatch_last_success_timestamp_seconds", "gauge", ("pipeline", "stage"),
+                           "Unix time of the last successful batch run."),
+    "run_duration": Family("stagewatch_run_duration_seconds", "gauge", ("pipeline", "stage"),
+                           "Duration of the last batch run."),
+    "trained": Family("stagewatch_model_trained_timestamp_seconds", "gauge", ("pipeline", "stage"),
+                      "Unix time at which the serving model was trained."),
+    "inference": Family("stagewatch_inference_duration_seconds", "histogram", ("pipeline", "stage"),
+                        "Inference time per item."),
+    "level": Family("stagewatch_level", "gauge", ("pipeline", "stage", "check"),
+                    "Level of a manual fixed-limit check, in the unit the plan states."),
+}
+
+
+def _sel(pipeline: str, stage: str, check: str | None = None) -> str:
+    parts = [f'pipeline="{pipeline}"', f'stage="{stage}"']
+    if check is not None:
+        parts.append(f'check="{check}"')
+    return "{" + ", ".join(parts) + "}"
+
+
+@dataclass
+class Series:
+    """Synthetic input series for promtool: name{labels} -> list of values per step (None = gap)."""
+
+    values: dict[str, list[float | None]] = field(default_factory=dict)
+
+    def add(self, key: str, values: list[float | None]) -> None:
+        self.values[key] = values
+
+
+def counter(rates: list[float]) -> list[float]:
+    """Cumulative counter values from increments per step (first sample 0)."""
+    out, total = [0.0], 0.0
+    for r in rates[1:]:
+        total += r
+        out.append(total)
+    return out
+
+
+@dataclass
+class Signal:
+    """Base: one value per check; subclasses say how to compute and how to simulate it."""
+
+    metric: dict[str, Any]
+    pipeline: str
+    stage: str
+    stage_info: dict[str, Any]
+    level_reading: ClassVar[bool] = False  # True: thresholds are levels (fixed limits), False: sizes of change
+
+    @property
+    def check(self) -> str:
+        return self.metric["id"]
+
+    @property
+    def window(self) -> str:
+        return self.metric["window"]
+
+    @property
+    def for_(self) -> str:
+        return "0s"
+
+    def families(self) -> list[Family]:
+        raise NotImplementedError
+
+    def recording(self) -> list[dict[str, Any]]:
+        return [{"record": "stagewatch:check_value", "expr": self.value_expr(), "labels": {"check": self.check}}]
+
+    def value_expr(self) -> str:
+        raise NotImplementedError
+
+    def simulate(self, value: float | None, steps: int, start: int, step_s: int) -> Series:
+        """Series whose recorded value is the normal value before ``start`` and ``value`` from then on."""
+        raise NotImplementedError
+
+    def normal_value(self) -> float:
+        return 0.0
+
+
+class ShareSignal(Signal):
+    """Change of a share against its reference share (proportion, quantile)."""
+
+    def families(self):
+        return [FAMILIES["items"], FAMILIES["matches"], FAMILIES["ref_share"]]
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage, self.check)
+        w = self.window
+        return (f"sum by (pipeline, stage, check) (rate(stagewatch_check_matches_total{s}[{w}]))\n"
+                f"  / sum by (pipeline, stage, check) (rate(stagewatch_check_items_total{s}[{w}]))\n"
+                f"  - sum by (pipeline, stage, check) (stagewatch_reference_share{s})")
+
+    def baseline(self) -> float:
+        params = self.metric.get("params") or {}
+        if self.metric["statistic"] == "quantile":
+            return 1 - params.get("q", 0.95)
+        return params.get("baseline", 0.01)
+
+    def simulate(self, value, steps, start, step_s):
+        p0 = self.baseline()
+        per_step = 1000.0
+        shares = [p0 if value is None or i < start else p0 + value for i in range(steps)]
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        out = Series()
+        out.add(f"stagewatch_check_items_total{{{labels}}}", counter([per_step] * steps))
+        out.add(f"stagewatch_check_matches_total{{{labels}}}", counter([per_step * s for s in shares]))
+        out.add(f"stagewatch_reference_share{{{labels}}}", [p0] * steps)
+        return out
+
+    def feasible(self, value: float) -> bool:
+        return 0.0 <= self.baseline() + value <= 1.0
+
+
+class CountSignal(Signal):
+    """Relative change of a count rate against its reference rate."""
+
+    def families(self):
+        return [FAMILIES["items"], FAMILIES["ref_rate"]]
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage, self.check)
+        return (f"sum by (pipeline, stage, check) (rate(stagewatch_check_items_total{s}[{self.window}]))\n"
+                f"  / sum by (pipeline, stage, check) (stagewatch_reference_items_per_second{s}) - 1")
+
+    def simulate(self, value, steps, start, step_s):
+        rate = 10.0  # items per second
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        per = [rate * step_s * (1 if value is None or i < start else 1 + value) for i in range(steps)]
+        out = Series()
+        out.add(f"stagewatch_check_items_total{{{labels}}}", counter(per))
+        out.add(f"stagewatch_reference_items_per_second{{{labels}}}", [rate] * steps)
+        return out
+
+    def feasible(self, value):
+        return value > -1
+
+
+class BinSignal(Signal):
+    """PSI or category-mix effect size w from per-bin counters and reference shares, in PromQL."""
+
+    @property
+    def bins(self) -> int:
+        params = self.metric.get("params") or {}
+        return int(params.get("bins") or params.get("categories") or BINS_DEFAULT)
+
+    def families(self):
+        return [FAMILIES["bins"], FAMILIES["ref_share"]]
+
+    def recording(self):
+        s = _sel(self.pipeline, self.stage, self.check)
+        w = self.window
+        share = (f"clamp_min(\n  sum by (pipeline, stage, check, bin) (increase(stagewatch_check_bin_items_total{s}[{w}]))\n"
+                 f"  / on (pipeline, stage, check) group_left\n"
+                 f"  sum by (pipeline, stage, check) (increase(stagewatch_check_bin_items_total{s}[{w}])),\n"
+                 f"  {SMOOTH})")
+        ref = f"clamp_min(sum by (pipeline, stage, check, bin) (stagewatch_reference_share{s}), {SMOOTH})"
+        rules = [{"record": "stagewatch:check_bin_share", "expr": share, "labels": {"check": self.check}},
+                 {"record": "stagewatch:check_bin_reference", "expr": ref, "labels": {"check": self.check}}]
+        a = f"stagewatch:check_bin_share{s}"
+        e = f"stagewatch:check_bin_reference{s}"
+        if self.metric["statistic"] == "psi":
+            value = (f"sum by (pipeline, stage, check) (\n  ({a} - on (pipeline, stage, check, bin) {e})\n"
+                     f"  * on (pipeline, stage, check, bin) ln({a} / on (pipeline, stage, check, bin) {e})\n)")
+        else:
+            value = (f"sqrt(sum by (pipeline, stage, check) (\n  ({a} - on (pipeline, stage, check, bin) {e}) ^ 2\n"
+                     f"  / on (pipeline, stage, check, bin) {e}\n))")
+        rules.append({"record": "stagewatch:check_value", "expr": value, "labels": {"check": self.check}})
+        return rules
+
+    def value_expr(self):  # pragma: no cover - recording() builds the chain
+        return self.recording()[-1]["expr"]
+
+    def shares_for(self, value: float) -> list[float]:
+        """Window shares whose statistic against uniform reference shares equals ``value``."""
+        b = self.bins
+        ref = [1 / b] * b
+
+        def stat(lam: float) -> float:
+            shares = [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
+            return statistic_of(self.metric["statistic"], shares, ref)
+
+        if value <= 0:
+            return ref
+        lo, hi = 0.0, 1.0
+        for _ in range(100):
+            mid = (lo + hi) / 2
+            lo, hi = (mid, hi) if stat(mid) < value else (lo, mid)
+        lam = (lo + hi) / 2
+        return [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
+
+    def simulate(self, value, steps, start, step_s):
+        b = self.bins
+        ref = [1 / b] * b
+        fault = self.shares_for(value) if value is not None else ref
+        out = Series()
+        for i in range(b):
+            labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}", bin="{i}"'
+            per = [1000.0 * (ref[i] if value is None or t < start else fault[i]) for t in range(steps)]
+            out.add(f"stagewatch_check_bin_items_total{{{labels}}}", counter(per))
+            out.add(f"stagewatch_reference_share{{{labels}}}", [ref[i]] * steps)
+        return out
+
+    def feasible(self, value):
+        top = statistic_of(self.metric["statistic"], [1.0] + [0.0] * (self.bins - 1), [1 / self.bins] * self.bins)
+        return 0 <= value < top
+
+
+def statistic_of(statistic: str, shares: list[float], reference: list[float]) -> float:
+    """The value the PromQL above computes, for the same shares (with the same smoothing)."""
+    a = [max(x, SMOOTH) for x in shares]
+    e = [max(x, SMOOTH) for x in reference]
+    if statistic == "psi":
+        return sum((x - y) * math.log(x / y) for x, y in zip(a, e))
+    return math.sqrt(sum((x - y) ** 2 / y for x, y in zip(a, e)))
+
+
+class GaugeStatisticSignal(Signal):
+    """KS distance or mean shift published by the data checks as a gauge."""
+
+    def families(self):
+        return [FAMILIES["statistic"]]
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage, self.check)
+        return f"max by (pipeline, stage, check) (stagewatch_check_statistic{s})"
+
+    def simulate(self, value, steps, start, step_s):
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        out = Series()
+        out.add(f"stagewatch_check_statistic{{{labels}}}",
+                [0.0 if value is None or i < start else value for i in range(steps)])
+        return out
+
+    def feasible(self, value):
+        return self.metric["statistic"] != "ks" or 0 <= value <= 1
+
+
+class CounterLevelSignal(Signal):
+    """A count of events over the window (failed runs, NaN outputs, dependency changes) against a fixed limit."""
+
+    level_reading: ClassVar[bool] = True
+
+    def families(self):
+        return [FAMILIES["matches"]]
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage, self.check)
+        return f"sum by (pipeline, stage, check) (increase(stagewatch_check_matches_total{s}[{self.window}]))"
+
+    def simulate(self, value, steps, start, step_s):
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        per = [0.0] * steps
+        if value is not None and start < steps:
+            per[start] = value  # the events happen at once, just after `start`
+        out = Series()
+        out.add(f"stagewatch_check_matches_total{{{labels}}}", counter(per))
+        return out
+
+    def feasible(self, value):
+        return value >= 0
+
+
+class GaugeLevelSignal(Signal):
+    """A gauge against a fixed limit; it must hold for the whole window (``for`` = window)."""
+
+    level_reading: ClassVar[bool] = True
+    family_key = "saturation"
+
+    @property
+    def for_(self):
+        return self.window
+
+    def families(self):
+        return [FAMILIES[self.family_key]]
+
+    def value_expr(self):
+        family = FAMILIES[self.family_key]
+        if "check" in family.labels:
+            s = _sel(self.pipeline, self.stage, self.check)
+            return f"max by (pipeline, stage, check) ({family.name}{s})"
+        s = _sel(self.pipeline, self.stage)
+        return f'label_replace(max by (pipeline, stage) ({family.name}{s}), "check", "{self.check}", "", "")'
+
+    def gauge_values(self, value, steps, start, step_s):
+        normal = self.normal_value()
+        return [normal if value is None or i < start else value for i in range(steps)]
+
+    def simulate(self, value, steps, start, step_s):
+        family = FAMILIES[self.family_key]
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}"'
+        if "check" in family.labels:
+            labels += f', check="{self.check}"'
+        out = Series()
+        out.add(f"{family.name}{{{labels}}}", self.gauge_values(value, steps, start, step_s))
+        return out
+
+    def normal_value(self):
+        limits = [x for x in (self.metric.get("warn"), self.metric.get("critical")) if x is not None]
+        return 0.5 * min(limits) if self.metric["direction"] == "above" else 2 * max(limits)
+
+    def feasible(self, value):
+        return value >= 0
+
+
+class AgeSignal(GaugeLevelSignal):
+    """Age from a timestamp gauge, in a unit of ``unit_seconds`` (model age in days, output age in run intervals)."""
+
+    family_key = "trained"
+    unit_seconds: float = 86400.0
+
+    @property
+    def for_(self):
+        return "0s"
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage)
+        family = FAMILIES[self.family_key]
+        return (f'label_replace((time() - max by (pipeline, stage) ({family.name}{s})) / {self.unit_seconds:g}, '
+                f'"check", "{self.check}", "", "")')
+
+    def gauge_values(self, value, steps, start, step_s):
+        # A timestamp that keeps the age at the normal value, then stops moving so the age grows past `value`.
+        out = []
+        normal = self.normal_value() * self.unit_seconds
+        frozen = None
+        for i in range(steps):
+            now = i * step_s
+            if value is None or i < start:
+                out.append(now - normal)
+            else:
+                if frozen is None:
+                    frozen = start * step_s - value * self.unit_seconds
+                out.append(frozen)
+        return out
+
+
+class RatioToReferenceSignal(GaugeLevelSignal):
+    """A duration divided by its reference duration (run time, inference time per item)."""
+
+    family_key = "run_duration"
+
+    @property
+    def for_(self):
+        return "0s"
+
+    def families(self):
+        return [FAMILIES[self.family_key], FAMILIES["ref_seconds"]]
+
+    def value_expr(self):
+        s = _sel(self.pipeline, self.stage)
+        c = _sel(self.pipeline, self.stage, self.check)
+        family = FAMILIES[self.family_key]
+        if family.type == "histogram":
+            current = (f"sum by (pipeline, stage) (rate({family.name}_sum{s}[{self.window}]))\n"
+                       f"  / sum by (pipeline, stage) (rate({family.name}_count{s}[{self.window}]))")
+        else:
+            current = f"max by (pipeline, stage) ({family.name}{s})"
+        return (f'label_replace({current}, "check", "{self.check}", "", "")\n'
+                f"  / on (pipeline, stage, check) max by (pipeline, stage, check) (stagewatch_reference_seconds{c})")
+
+    def simulate(self, value, steps, start, step_s):
+        reference = 2.0
+        ratios = self.gauge_values(value, steps, start, step_s)
+        family = FAMILIES[self.family_key]
+        labels = f'pipeline="{self.pipeline}", stage="{self.stage}"'
+        c = labels + f', check="{self.check}"'
+        out = Series()
+        if family.type == "histogram":
+            out.add(f"{family.name}_count{{{labels}}}", counter([100.0] * steps))
+            out.add(f"{family.name}_sum{{{labels}}}", counter([100.0 * reference * r for r in ratios]))
+        else:
+            out.add(f"{family.name}{{{labels}}}", [reference * r for r in ratios])
+        out.add(f"stagewatch_reference_seconds{{{c}}}", [reference] * steps)
+        return out
+
+
+class AlertsSignal(GaugeLevelSignal):
+    """Stages whose software alerts are firing, from Prometheus' own ALERTS series."""
+
+    @property
+    def for_(self):
+        return "0s"
+
+    def families(self):
+        return []
+
+    def value_expr(self):
+        firing = (f'ALERTS{{alertstate="firing", layer="software", pipeline="{self.pipeline}", '
+                  f'stage!="pipeline"}}')
+        return (f'label_replace(label_replace(count by (pipeline) (count by (pipeline, stage) ({firing})), '
+                f'"stage", "pipeline", "", ""), "check", "{self.check}", "", "")')
+
+    def simulate(self, value, steps, start, step_s):
+        out = Series()
+        n = int(value) if value is not None else 0
+        for k in range(max(n, 1)):
+            labels = (f'alertname="SyntheticSoftwareAlert{k}", alertstate="firing", layer="software", '
+                      f'pipeline="{self.pipeline}", stage="synthetic_{k}"')
+            out.add(f"ALERTS{{{labels}}}", [1.0 if (value is not None and i >= start and k < n) else None
+                                           for i in range(steps)])
+        return out
+
+
+# Fixed-limit checks, by the catalog rule that proposed them.
+_LEVELS: dict[str, tuple[type, dict[str, Any]]] = {
+    "software.batch.run_success": (CounterLevelSignal, {}),
+    "mlts.numerical": (CounterLevelSignal, {}),
+    "mlts.dependencies": (CounterLevelSignal, {}),
+    "software.online.saturation": (GaugeLevelSignal, {"family_key": "saturation"}),
+    "mlts.staleness": (AgeSignal, {"family_key": "trained", "unit_seconds": 86400.0}),
+    "software.batch.freshness": (AgeSignal, {"family_key": "last_success"}),
+    "software.batch.duration": (RatioToReferenceSignal, {"family_key": "run_duration"}),
+    "mlts.compute": (RatioToReferenceSignal, {"family_key": "inference"}),
+    "pipeline.software.health": (AlertsSignal, {}),
+}
+
+
+def signal_for(metric: dict[str, Any], pipeline: str, stage: str, stage_info: dict[str, Any]) -> Signal | None:
+    """The signal for a plan metric; None for burn-rate metrics (handled as SLO alert pairs)."""
+    statistic = metric["statistic"]
+    args = (metric, pipeline, stage, stage_info)
+    if statistic == "burn_rate":
+        return None
+    if statistic in ("proportion", "quantile"):
+        return ShareSignal(*args)
+    if statistic == "count":
+        return CountSignal(*args)
+    if statistic in ("psi", "chi_square"):
+        return BinSignal(*args)
+    if statistic in ("ks", "mean"):
+        return GaugeStatisticSignal(*args)
+    cls, attrs = _LEVELS.get(metric.get("source", ""), (GaugeLevelSignal, {"family_key": "level"}))
+    sig = cls(*args)
+    for key, value in attrs.items():
+        setattr(sig, key, value)
+    if isinstance(sig, AgeSignal) and sig.family_key == "last_success":
+        sig.unit_seconds = float(durations.parse(stage_info.get("run_every") or "1h"))
+    return sig
