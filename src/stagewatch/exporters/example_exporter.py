@@ -128,6 +128,10 @@ def main() -> None:
     instrumentation = json.loads(Path(args.instrumentation).read_text())
     if args.fault and args.fault not in instrumentation["checks"]:
         parser.error(f"--fault {args.fault}: no such check in {args.instrumentation}")
+    import prometheus_client
+
+    if hasattr(prometheus_client, "disable_created_metrics"):
+        prometheus_client.disable_created_metrics()  # the *_created series add nothing here
     registry = CollectorRegistry()
     metrics = build(instrumentation, registry)
     start_http_server(args.port, addr=args.address, registry=registry)

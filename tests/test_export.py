@@ -1,0 +1,273 @@
+"""Exports checked by the real tools: promtool, amtool, Alertmanager and Prometheus servers on loopback."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import socket
+import subprocess
+import sys
+import time
+import urllib.request
+from pathlib import Path
+
+import pytest
+import yaml
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from conftest import all_pipelines
+from stagewatch.exporters.checks import checks_document
+from stagewatch.exporters.prometheus import alert_name, build, export_prometheus
+from stagewatch.plan import compose, dump
+from stagewatch.resources import validator
+from stagewatch.spec import load_pipeline
+
+
+def _tool(name: str) -> str:
+    path = shutil.which(name)
+    assert path, f"{name} is not installed; `make test` installs it (.ci/install-tools)"
+    return path
+
+
+def _run(*args: str, timeout: int = 600) -> subprocess.CompletedProcess:
+    return subprocess.run(list(args), capture_output=True, text=True, timeout=timeout)
+
+
+@pytest.fixture(scope="module", params=all_pipelines(), ids=lambda p: p.stem)
+def exported(request, tmp_path_factory):
+    plan = compose(load_pipeline(str(request.param)))
+    out = tmp_path_factory.mktemp(request.param.stem)
+    export_prometheus(plan, str(out))
+    return plan, out
+
+
+def test_promtool_accepts_the_rules(exported):
+    _, out = exported
+    result = _run(_tool("promtool"), "check", "rules", *map(str, sorted((out / "rules").glob("*.yml"))))
+    assert result.returncode == 0, result.stdout + result.stderr
+
+
+def test_every_alert_fires_on_its_fault_and_stays_quiet_otherwise(exported):
+    plan, out = exported
+    tests = sorted((out / "tests").glob("*.yml"))
+    result = _run(_tool("promtool"), "test", "rules", *map(str, tests))
+    assert result.returncode == 0, result.stdout[-4000:] + result.stderr[-2000:]
+    # Every alerting rule has a quiet and a firing evaluation in the tests.
+    alerts = {r["alert"] for f in (out / "rules").glob("*.yml") for g in yaml.safe_load(f.read_text())["groups"]
+              for r in g["rules"] if "alert" in r}
+    quiet, firing = set(), set()
+    for f in tests:
+        for test in yaml.safe_load(f.read_text())["tests"]:
+            for case in test["alert_rule_test"]:
+                (firing if case["exp_alerts"] else quiet).add(case["alertname"])
+    assert alerts and alerts == firing == quiet
+
+
+def test_amtool_accepts_the_alertmanager_config(exported):
+    _, out = exported
+    result = _run(_tool("amtool"), "check-config", str(out / "alertmanager.yml"))
+    assert result.returncode == 0, result.stdout + result.stderr
+
+
+def test_the_rule_tests_can_fail(tmp_path):
+    # Mutation check: raise one critical threshold far out of reach and the exported tests must fail.
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    export_prometheus(plan, str(tmp_path))
+    target = tmp_path / "rules" / "frame_gate.rules.yml"
+    text = target.read_text()
+    name = alert_name("frame_gate.output.pass_rate")
+    rules = yaml.safe_load(text)
+    for rule in rules["groups"][0]["rules"]:
+        if rule.get("alert") == name and rule["labels"]["level"] == "critical":
+            rule["expr"] = rule["expr"].rsplit(">", 1)[0] + "> 0.99"
+    target.write_text(yaml.safe_dump(rules, sort_keys=False))
+    tests = sorted((tmp_path / "tests").glob("frame_gate.*.yml"))
+    result = _run(_tool("promtool"), "test", "rules", *map(str, tests))
+    assert result.returncode != 0 and name in result.stdout + result.stderr
+
+
+def test_checks_export_meets_its_schema():
+    for source in all_pipelines():
+        plan = compose(load_pipeline(str(source)))
+        document = checks_document(plan)
+        validator("checks").validate(document)
+        assert {c["id"] for c in document["checks"]} == {m["id"] for s in plan["stages"] for m in s["metrics"]} | {
+            m["id"] for m in plan["pipeline_metrics"]}
+
+
+def test_rejected_metrics_are_not_exported():
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    plan["stages"][1]["metrics"][0]["status"] = "rejected"
+    rejected = plan["stages"][1]["metrics"][0]["id"]
+    exported = build(plan)
+    assert all(r.get("labels", {}).get("check") != rejected for g in exported.groups for r in g.rules)
+    assert rejected not in exported.instrumentation["checks"]
+
+
+# --- inhibition in a real Alertmanager -----------------------------------------------------------------------
+
+def _free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return s.getsockname()[1]
+
+
+def _get(url: str):
+    with urllib.request.urlopen(url, timeout=5) as response:
+        return json.loads(response.read())
+
+
+def _wait(url: str, deadline: float) -> None:
+    while time.monotonic() < deadline:
+        try:
+            urllib.request.urlopen(url, timeout=1).read()
+            return
+        except OSError:
+            time.sleep(0.2)
+    raise AssertionError(f"{url} did not come up")
+
+
+def _start(args: list[str], log: Path) -> subprocess.Popen:
+    return subprocess.Popen(args, stdout=log.open("w"), stderr=subprocess.STDOUT)
+
+
+def _alert(plan_id: str, stage: str, level: str, drift: str, pipeline: str, layer: str = "output") -> dict:
+    return {"labels": {"alertname": alert_name(plan_id), "pipeline": pipeline, "stage": stage, "check": plan_id,
+                       "level": level, "severity": "page", "layer": layer, "drift": drift},
+            "annotations": {"summary": plan_id}}
+
+
+def test_an_upstream_fault_inhibits_downstream_drift_alerts_in_alertmanager(tmp_path):
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    export_prometheus(plan, str(tmp_path / "export"))
+    port, cluster = _free_port(), _free_port()
+    log = tmp_path / "alertmanager.log"
+    proc = _start([_tool("prometheus-alertmanager") if shutil.which("prometheus-alertmanager") else
+                   _tool("alertmanager"), f"--config.file={tmp_path / 'export' / 'alertmanager.yml'}",
+                   f"--storage.path={tmp_path / 'am-data'}", f"--web.listen-address=127.0.0.1:{port}",
+                   f"--cluster.listen-address=127.0.0.1:{cluster}", "--cluster.peer-timeout=1s"], log)
+    base = f"http://127.0.0.1:{port}"
+    try:
+        _wait(f"{base}/-/ready", time.monotonic() + 30)
+        pipeline = plan["pipeline"]
+        alerts = [
+            _alert("frame_gate.output.pass_rate", "frame_gate", "critical", "true", pipeline),  # the cause
+            _alert("variety_tagger.output.unknown_share", "variety_tagger", "critical", "true", pipeline),
+            _alert("grade_assigner.input.from_blemish_scorer_drift", "grade_assigner", "critical", "true",
+                   pipeline, "input"),
+            _alert("grade_assigner.software.saturation", "grade_assigner", "critical", "false", pipeline,
+                   "software"),
+        ]
+        request = urllib.request.Request(f"{base}/api/v2/alerts", data=json.dumps(alerts).encode(),
+                                         headers={"Content-Type": "application/json"}, method="POST")
+        urllib.request.urlopen(request, timeout=5).read()
+        deadline = time.monotonic() + 30
+        state = {}
+        while time.monotonic() < deadline:
+            state = {a["labels"]["check"]: a["status"] for a in _get(f"{base}/api/v2/alerts")}
+            if len(state) == 4 and state["variety_tagger.output.unknown_share"]["inhibitedBy"]:
+                break
+            time.sleep(0.3)
+        assert state["frame_gate.output.pass_rate"]["state"] == "active"
+        assert state["variety_tagger.output.unknown_share"]["state"] == "suppressed"
+        assert state["variety_tagger.output.unknown_share"]["inhibitedBy"]
+        assert state["grade_assigner.input.from_blemish_scorer_drift"]["inhibitedBy"]
+        # Not a drift alert: a saturated grade_assigner is its own problem and still pages.
+        assert state["grade_assigner.software.saturation"]["state"] == "active"
+    finally:
+        proc.terminate()
+        proc.wait(timeout=10)
+
+
+# --- a real Prometheus server scraping the example exporter -------------------------------------------------
+
+def test_live_prometheus_evaluates_every_rule_and_fires_the_fault(tmp_path):
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    out = tmp_path / "export"
+    export_prometheus(plan, str(out))
+    fault = "frame_gate.output.pass_rate"
+    exporter_port, prom_port = _free_port(), _free_port()
+    config = {"global": {"scrape_interval": "1s", "evaluation_interval": "1s"},
+              "rule_files": [str(p) for p in sorted((out / "rules").glob("*.yml"))],
+              "scrape_configs": [{"job_name": "stage", "static_configs": [
+                  {"targets": [f"127.0.0.1:{exporter_port}"]}]}]}
+    (tmp_path / "prometheus.yml").write_text(yaml.safe_dump(config))
+    exporter = _start([sys.executable, str(out / "example_exporter.py"), "--port", str(exporter_port),
+                       "--fault", fault, "--seconds", "120"], tmp_path / "exporter.log")
+    prometheus = _start([_tool("prometheus"), f"--config.file={tmp_path / 'prometheus.yml'}",
+                         f"--storage.tsdb.path={tmp_path / 'tsdb'}", f"--web.listen-address=127.0.0.1:{prom_port}"],
+                        tmp_path / "prometheus.log")
+    base = f"http://127.0.0.1:{prom_port}"
+    try:
+        _wait(f"http://127.0.0.1:{exporter_port}/metrics", time.monotonic() + 30)
+        _wait(f"{base}/-/ready", time.monotonic() + 60)
+        name = alert_name(fault)
+        deadline = time.monotonic() + 60
+        firing, rules = [], []
+        while time.monotonic() < deadline:
+            rules = [r for g in _get(f"{base}/api/v1/rules")["data"]["groups"] for r in g["rules"]]
+            alerts = _get(f"{base}/api/v1/alerts")["data"]["alerts"]
+            firing = [a for a in alerts if a["labels"]["alertname"] == name and a["state"] == "firing"]
+            if firing and all(r.get("health") == "ok" for r in rules):
+                break
+            time.sleep(1)
+        bad = [(r["name"], r.get("health"), r.get("lastError")) for r in rules if r.get("health") != "ok"]
+        assert rules and not bad, bad[:5]
+        assert {a["labels"]["level"] for a in firing} == {"warn", "critical"}, (tmp_path / "prometheus.log").read_text()[-2000:]
+        # A check without a fault stays quiet.
+        quiet = alert_name("variety_tagger.output.unknown_share")
+        assert not [a for a in _get(f"{base}/api/v1/alerts")["data"]["alerts"] if a["labels"]["alertname"] == quiet
+                    and a["state"] == "firing"]
+    finally:
+        for proc in (prometheus, exporter):
+            proc.terminate()
+            proc.wait(timeout=15)
+
+
+# --- property: any valid pipeline exports rules promtool accepts ---------------------------------------------
+
+_ids = st.from_regex(r"[a-z][a-z0-9_]{0,10}", fullmatch=True)
+
+
+@st.composite
+def pipelines(draw):
+    n = draw(st.integers(1, 6))
+    ids = draw(st.lists(_ids.filter(lambda s: s != "pipeline"), min_size=n, max_size=n, unique=True))
+    stages = []
+    for i, sid in enumerate(ids):
+        kind = draw(st.sampled_from(["learned", "rule-based", "source"]))
+        serving = draw(st.sampled_from(["online", "batch", "device"]))
+        stage = {"id": sid, "kind": kind,
+                 "modality": draw(st.sampled_from(["audio", "image", "video", "text", "tabular", "events",
+                                                   "timeseries"])),
+                 "output": draw(st.sampled_from(["gate", "segments", "class", "attribute", "score", "value",
+                                                 "ranking", "text", "records"])),
+                 "serving": serving, "volume_per_hour": draw(st.sampled_from([1, 30, 1000, 200000])),
+                 "change_rate": draw(st.sampled_from(["minutes", "hours", "days", "months"])),
+                 "upstream": sorted(draw(st.sets(st.sampled_from(ids[:i]), max_size=2))) if i else []}
+        if serving == "online" and draw(st.booleans()):
+            stage["latency_slo_ms"] = draw(st.sampled_from([5, 40, 250, 1500]))
+        if kind == "learned" and draw(st.booleans()):
+            stage.update(labels="delayed", label_delay=draw(st.sampled_from(["1h", "2d"])))
+        if draw(st.booleans()):
+            stage["inputs"] = [{"name": "f_num", "type": "numeric", "range": [0, 1]},
+                               {"name": "f_cat", "type": "category"}]
+        stages.append(stage)
+    return {"pipeline": "random", "context": draw(st.sampled_from(["consumer", "business"])), "stages": stages}
+
+
+@settings(max_examples=12, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(description=pipelines())
+def test_any_valid_pipeline_exports_rules_promtool_accepts(tmp_path_factory, description):
+    work = tmp_path_factory.mktemp("random")
+    source = work / "pipeline.yaml"
+    source.write_text(yaml.safe_dump(description, sort_keys=False))
+    plan = compose(load_pipeline(str(source)))
+    (work / "plan.yaml").write_text(dump(plan))
+    export_prometheus(plan, str(work / "out"))
+    rules = sorted((work / "out" / "rules").glob("*.yml"))
+    result = _run(_tool("promtool"), "check", "rules", *map(str, rules))
+    assert result.returncode == 0, result.stdout + result.stderr
+    am = _run(_tool("amtool"), "check-config", str(work / "out" / "alertmanager.yml"))
+    assert am.returncode == 0, am.stdout + am.stderr
