@@ -108,3 +108,8 @@ def test_label_delayed_quality_uses_labelled_volume_and_lag():
 def test_round_up_never_goes_below():
     for x in (0.01234, 0.25, 1.0001, 37.2, 0.0009991):
         assert sizing.round_up(x) >= x
+
+
+def test_no_traffic_is_flagged_not_a_crash():
+    result = sizing.size_metric(_metric(), sizing.Traffic(0, "days"), BUDGET)
+    assert "no traffic" in result["review"] and result["sizing"]["samples_per_window"] == 0

@@ -195,7 +195,7 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             edge = metric.get("edge")
             edge_t = (edge["from"], edge["to"]) if edge and edge.get("from") in stages else None
             traffic = context.traffic(owner, edge_t, _is_quality(metric))
-        if traffic is not None and metric.get("statistic") and metric.get("window"):
+        if traffic is not None and metric.get("status") != "stale" and metric.get("window"):
             _apply_sizing(metric, traffic, budget, refresh=metric_id not in kept)
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)

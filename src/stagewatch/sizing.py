@@ -248,7 +248,9 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     if chosen.n < stat.min_samples():
         review = (f"only {_fmt(chosen.n)} samples per {durations.format(chosen.window)} window, fewer than the "
                   f"{stat.min_samples()} this statistic needs; the check is unreliable at this volume")
-    if critical is not None and chosen.floor > critical:
+    if math.isinf(chosen.floor):
+        review = "no traffic reaches this check (0 samples per window); it cannot be sized"
+    elif critical is not None and chosen.floor > critical:
         raised = round_up(chosen.floor)
         notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at the "
                      f"longest window")
@@ -256,7 +258,7 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                             f"{raised:g} instead of {critical:g}")
         critical = raised
     warn_alpha = warn_floor = None
-    if warn is not None:
+    if warn is not None and chosen.n > 0:
         warn_alpha = min(0.5, budget.ticket_share / chosen.evaluations)
         warn_floor = stat.floor(chosen.n, chosen.m, warn_alpha)
         if warn < warn_floor:
@@ -269,6 +271,11 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                 notes.append(f"raised the warn threshold from {warn:g} to {raised:g}, its noise floor")
                 warn = raised
     crit_fa = warn_fa = None
+    if chosen.n <= 0:
+        return {"window": durations.format(chosen.window), "reference": metric.get("reference", "28d"),
+                "warn": _sig(warn), "critical": _sig(critical), "review": review,
+                "sizing": {"method": "noise floor", "samples_per_window": 0,
+                           "derivation": "No items reach this check, so there is nothing to size."}}
     if critical is not None:
         crit_fa = stat.false_alarm(critical, chosen.n, chosen.m) * chosen.evaluations
     if warn is not None:

@@ -1,0 +1,555 @@
+"""`interview`: from a blank page to a reviewed plan in one sitting, in the terminal.
+
+Questions are data (:class:`Question`); :func:`prompt` is the one function that talks to the terminal (through
+questionary), and tests or ``--answers`` replace it. Every answer is stored under a stable key
+(``pipeline.name``, ``stages.2.kind``, ``review.grader.input``...), so a draft saved on Ctrl-C, an answers file and
+a resumed session are the same thing: answers looked up before anything is asked.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable
+
+import yaml
+
+from stagewatch import durations, spec, yamlio
+from stagewatch.errors import EXIT_INTERRUPTED, EXIT_OK, StagewatchError
+from stagewatch.graph import PipelineGraph
+from stagewatch.lint import lint_document
+from stagewatch.plan import all_metrics, compose, dump, load_plan
+
+DRAFT_VERSION = 1
+KINDS = ["learned", "rule-based", "source"]
+MODALITIES = ["tabular", "image", "video", "audio", "text", "events", "timeseries"]
+OUTPUTS = ["class", "attribute", "score", "value", "ranking", "gate", "segments", "text", "records"]
+SERVING = ["online", "batch", "device"]
+CHANGE_RATES = ["minutes", "hours", "days", "months"]
+LABELS = ["delayed", "immediate", "none"]
+LAYERS = ("software", "input", "output")
+
+Answers = dict[str, Any]
+
+
+@dataclass
+class Question:
+    key: str
+    text: str
+    help: str
+    kind: str = "text"  # text | select | checkbox | confirm
+    choices: list[str] | None = None
+    default: Any = None
+    validate: Callable[[Any], str | None] | None = None
+    convert: Callable[[str], Any] | None = None
+
+
+class Interrupted(Exception):
+    """Ctrl-C or end of input during a prompt."""
+
+
+# The one place that talks to the terminal. Tests set IO to prompt_toolkit pipe input and a dummy output.
+IO: dict[str, Any] = {}
+
+
+def prompt(question: Question) -> Any:
+    import questionary
+
+    validate = _questionary_validator(question)
+    if question.kind == "select":
+        q = questionary.select(question.text, choices=question.choices, default=question.default, **IO)
+    elif question.kind == "checkbox":
+        choices = [questionary.Choice(c, checked=c in (question.default or [])) for c in question.choices or []]
+        q = questionary.checkbox(question.text, choices=choices, validate=validate or (lambda _: True), **IO)
+    elif question.kind == "confirm":
+        q = questionary.confirm(question.text, default=bool(question.default), **IO)
+    else:
+        default = "" if question.default is None else str(question.default)
+        q = questionary.text(question.text, default=default, validate=validate or (lambda _: True), **IO)
+    try:
+        value = q.unsafe_ask()
+    except (KeyboardInterrupt, EOFError):
+        raise Interrupted from None
+    if question.kind == "text" and question.convert:
+        value = question.convert(value)
+    return value
+
+
+def _questionary_validator(question: Question) -> Callable[[Any], bool | str] | None:
+    if not question.validate:
+        return None
+
+    def check(value: Any) -> bool | str:
+        if question.kind == "text" and question.convert:
+            try:
+                value = question.convert(value)
+            except ValueError as exc:
+                return str(exc)
+        problem = question.validate(value)
+        return True if problem is None else problem
+
+    return check
+
+
+def has_terminal() -> bool:
+    return sys.stdin.isatty() and sys.stdout.isatty()
+
+
+class Session:
+    """Asks questions in order, taking answers already known (draft, answers file) instead of prompting."""
+
+    def __init__(self, known: Answers | None = None, interactive: bool = True, out: Callable[[str], None] = print):
+        self.known = dict(known or {})
+        self.answers: Answers = {}
+        self.interactive = interactive
+        self.out = out
+        self.asked: set[str] = set()
+
+    def ask(self, question: Question) -> Any:
+        self.asked.add(question.key)
+        if question.key in self.known:
+            value = self.known[question.key]
+            if question.validate is not None:
+                problem = question.validate(value)
+                if problem:
+                    raise StagewatchError(f"answer to '{question.key}' ({question.text}): {problem}",
+                                          expected=question.help)
+        elif not self.interactive:
+            if question.default is None and question.kind == "text":
+                raise StagewatchError(f"no answer for '{question.key}' ({question.text}) and no default",
+                                      expected=f"'{question.key}: ...' in the answers file")
+            value = question.default
+        else:
+            self.out(f"  ? {question.help}")
+            value = prompt(question)
+        self.answers[question.key] = value
+        return value
+
+    def unused(self) -> list[str]:
+        return sorted(k for k in self.known if k not in self.asked)
+
+
+# --- validators -----------------------------------------------------------------------------------------------
+
+
+def _positive(value: Any) -> str | None:
+    try:
+        return None if float(value) > 0 else "must be a number above 0"
+    except (TypeError, ValueError):
+        return "must be a number, such as 1 or 0.5"
+
+
+def _number(text: Any) -> float:
+    try:
+        value = float(text)
+    except (TypeError, ValueError):
+        raise ValueError("must be a number, such as 1200 or 0.5") from None
+    return int(value) if value.is_integer() else value
+
+
+def _optional_number(text: Any) -> float | None:
+    if text is None or str(text).strip() == "":
+        return None
+    return _number(text)
+
+
+def _duration(value: Any) -> str | None:
+    return None if durations.is_duration(value) else "must be a duration such as 30m, 12h or 3d"
+
+
+def _name_validator(taken: set[str]) -> Callable[[Any], str | None]:
+    import re
+
+    def check(value: Any) -> str | None:
+        if not isinstance(value, str) or not re.match(r"^[a-z][a-z0-9_-]{0,62}$", value):
+            return "use lower case letters, digits, _ or -, starting with a letter"
+        if value == "pipeline":
+            return "'pipeline' is reserved for metrics of the whole pipeline"
+        if value in taken:
+            return f"there is already a stage called '{value}'"
+        return None
+
+    return check
+
+
+# --- the questions --------------------------------------------------------------------------------------------
+
+
+def ask_pipeline(s: Session, current: dict[str, Any] | None = None) -> dict[str, Any]:
+    cur = current or {}
+    name = s.ask(Question("pipeline.name", "Pipeline name", "Used in every alert and file name; lower case.",
+                          default=cur.get("pipeline", "my-pipeline"), validate=_name_validator(set())))
+    context = s.ask(Question("pipeline.context", "Who produces the data?",
+                             "Businesses and machines change their data within hours; a large consumer "
+                             "population within days. This sets how fast windows must react.", "select",
+                             ["business", "consumer"], default=cur.get("context", "business")))
+    budget = s.ask(Question("pipeline.false_alarms_per_week", "False pages per week you can live with",
+                            "Split over all paging checks; each check's threshold is set so that noise alone "
+                            "stays within its share.", default=cur.get("false_alarms_per_week", 1),
+                            validate=_positive, convert=_number))
+    owner = s.ask(Question("pipeline.owner", "Team that owns the pipeline (for alert routing)",
+                           "Alerts carry it as the owner label; Alertmanager routes on it.",
+                           default=cur.get("owner", "ml-team")))
+    out = {"pipeline": name, "context": context, "false_alarms_per_week": budget}
+    if owner:
+        out["owner"] = owner
+    return out
+
+
+def _default_output(kind: str) -> str:
+    return {"learned": "class", "rule-based": "gate", "source": "records"}[kind]
+
+
+def ask_stage(s: Session, index: int, total: int | None, head: dict[str, Any], earlier: list[dict[str, Any]],
+              current: dict[str, Any] | None = None, prefix: str | None = None) -> dict[str, Any]:
+    """Questions for one stage. A typical stage takes 7 questions when the defaults are accepted."""
+    cur = current or {}
+    key = prefix or f"stages.{index}"
+    s.out(f"-- stage {index + 1} of {total} --" if total else f"-- stage {index + 1} --")
+    taken = {st["id"] for st in earlier}
+    previous = earlier[-1] if earlier else {}
+    stage: dict[str, Any] = {}
+    stage["id"] = s.ask(Question(f"{key}.id", "Stage id", "Short name used in metric ids, e.g. frame_gate.",
+                                 default=cur.get("id", f"stage_{index + 1}"), validate=_name_validator(taken)))
+    stage["kind"] = s.ask(Question(f"{key}.kind", "What kind of stage is it?",
+                                   "learned: a trained model; rule-based: fixed logic such as a gate or a "
+                                   "filter; source: where data enters (sensor, feed, log).", "select", KINDS,
+                                   default=cur.get("kind", "source" if not earlier else "learned")))
+    stage["modality"] = s.ask(Question(f"{key}.modality", "What does it take in?",
+                                       "The modality of its input decides the input metrics (brightness for "
+                                       "images, length for text ...).", "select", MODALITIES,
+                                       default=cur.get("modality", previous.get("modality", "tabular"))))
+    stage["output"] = s.ask(Question(f"{key}.output", "What does it put out?",
+                                     "gate: passes on, drops or clips its input; attribute: a category that may be "
+                                     "unknown; the output kind decides the output metrics.", "select", OUTPUTS,
+                                     default=cur.get("output", _default_output(stage["kind"]))))
+    if earlier:
+        names = [st["id"] for st in earlier]
+        stage["upstream"] = s.ask(Question(
+            f"{key}.upstream", "Which stages feed it? (space to pick, enter to confirm)",
+            "Each hand-off gets the same check on both sides, so a shift can be placed before or after it.",
+            "checkbox", names, default=cur.get("upstream", [names[-1]] if stage["kind"] != "source" else [])))
+    else:
+        stage["upstream"] = []
+    stage["volume_per_hour"] = s.ask(Question(
+        f"{key}.volume_per_hour", "Items per hour at a typical hour",
+        "Sets how many samples a window holds, hence how short a window can be and still be trusted.",
+        default=cur.get("volume_per_hour", previous.get("volume_per_hour", 1000)), validate=_positive,
+        convert=_number))
+    serving = cur.get("serving", previous.get("serving", "online"))
+    change_rate = cur.get("change_rate", spec.DEFAULT_CHANGE_RATE[head["context"]])
+    labels = cur.get("labels", "delayed" if stage["kind"] == "learned" else "none")
+    label_delay = cur.get("label_delay", "1d")
+    summary = f"serving {serving}, data changes within {change_rate}"
+    if stage["kind"] == "learned":
+        summary += f", labels {labels}" + (f" after {label_delay}" if labels == "delayed" else "")
+    if cur.get("latency_slo_ms"):
+        summary += f", latency SLO {cur['latency_slo_ms']:g} ms"
+    keep = s.ask(Question(f"{key}.keep_defaults", f"Keep the usual settings ({summary})?",
+                          "Say no to set serving, change rate, latency SLO and labels yourself.", "confirm",
+                          default=True))
+    latency = cur.get("latency_slo_ms")
+    if not keep:
+        serving = s.ask(Question(f"{key}.serving", "How is it served?",
+                                 "online: answers requests; batch: runs on a schedule; device: runs on users' or "
+                                 "machines' devices. Decides the software metrics.", "select", SERVING,
+                                 default=serving))
+        change_rate = s.ask(Question(f"{key}.change_rate", "How fast can its input change?",
+                                     "A retuned machine or new supplier changes data in minutes; a large user base "
+                                     "over months. The window must be shorter than this.", "select", CHANGE_RATES,
+                                     default=change_rate))
+        if serving == "online":
+            latency = s.ask(Question(f"{key}.latency_slo_ms", "Latency SLO in ms (blank for none)",
+                                     "With an SLO you get burn-rate alerts on slow requests.",
+                                     default=latency if latency is not None else "", convert=_optional_number,
+                                     validate=lambda v: None if v is None else _positive(v)))
+        if stage["kind"] == "learned":
+            labels = s.ask(Question(f"{key}.labels", "Do its predictions get ground-truth labels?",
+                                    "With labels the plan watches quality itself; without, a proxy.", "select",
+                                    LABELS, default=labels))
+            if labels == "delayed":
+                label_delay = s.ask(Question(f"{key}.label_delay", "How long until labels arrive? (e.g. 3d)",
+                                             "Quality windows are evaluated this long after they close.",
+                                             default=label_delay, validate=_duration))
+    stage["serving"] = serving
+    stage["change_rate"] = change_rate
+    if serving == "online" and latency:
+        stage["latency_slo_ms"] = latency
+    if stage["kind"] == "learned":
+        stage["labels"] = labels
+        if labels == "delayed":
+            stage["label_delay"] = label_delay
+    for extra in ("description", "owner", "labelled_share", "slo_target", "slo_period", "run_every", "inputs",
+                  "outputs"):
+        if extra in cur:
+            stage[extra] = cur[extra]
+    if stage["kind"] == "source":
+        stage.pop("labels", None)
+    return stage
+
+
+def _table(metrics: list[dict[str, Any]]) -> list[str]:
+    rows = [("metric", "window", "warn", "critical", "why")]
+    for m in metrics:
+        rows.append((m["id"].split(".", 2)[2], m["window"], _th(m.get("warn")), _th(m.get("critical")),
+                     (m.get("why") or "")[:70]))
+    widths = [max(len(r[i]) for r in rows) for i in range(4)]
+    return ["    " + "  ".join(r[i].ljust(widths[i]) for i in range(4)) + "  " + r[4] for r in rows]
+
+
+def _th(value: Any) -> str:
+    return "-" if value is None else f"{value:g}"
+
+
+def review(s: Session, plan: dict[str, Any], stages: list[str]) -> None:
+    """Accept, reject (with a note) or edit the proposal, stage by stage and layer by layer."""
+    by_id = {st["id"]: st for st in plan["stages"]}
+    for stage_id in stages:
+        block = by_id[stage_id]
+        for layer in LAYERS:
+            metrics = [m for m in block["metrics"] if m["layer"] == layer and m["status"] == "proposed"]
+            if not metrics:
+                continue
+            s.out(f"{stage_id}: {len(metrics)} proposed {layer} metrics")
+            for line in _table(metrics):
+                s.out(line)
+            key = f"review.{stage_id}.{layer}"
+            choice = s.ask(Question(key, f"{stage_id}, {layer} metrics: what now?",
+                                    "Accepted metrics are exported as they are; rejected ones need a note saying "
+                                    "why; 'later' leaves them proposed for code review.", "select",
+                                    ["accept all", "choose one by one", "later"], default="accept all"))
+            if choice == "later":
+                continue
+            if choice == "accept all":
+                for m in metrics:
+                    m["status"] = "accepted"
+                continue
+            names = [m["id"] for m in metrics]
+            keep = s.ask(Question(f"{key}.accepted", "Untick the metrics to reject",
+                                  "Ticked: accepted. Unticked: rejected, and you will say why.", "checkbox", names,
+                                  default=names))
+            for m in metrics:
+                if m["id"] in keep:
+                    m["status"] = "accepted"
+                else:
+                    m["status"] = "rejected"
+                    m["note"] = s.ask(Question(f"review.{m['id']}.note", f"Why reject {m['id']}?",
+                                               "The note stays in the plan so reviewers know it was a decision.",
+                                               validate=lambda v: None if str(v or "").strip() else
+                                               "a rejection needs a reason"))
+            edit = s.ask(Question(f"{key}.edit", "Tick any metric whose window or thresholds you want to change",
+                                  "The plan will re-derive the sizing for your numbers.", "checkbox",
+                                  [n for n in names if n in keep], default=[]))
+            for m in metrics:
+                if m["id"] not in edit:
+                    continue
+                m["window"] = s.ask(Question(f"edit.{m['id']}.window", f"{m['id']}: window", "e.g. 15m, 1h, 1d",
+                                             default=m["window"], validate=_duration))
+                for level in ("warn", "critical"):
+                    m[level] = s.ask(Question(f"edit.{m['id']}.{level}", f"{m['id']}: {level} threshold "
+                                              f"({m.get('unit', '')}, blank for none)", "", default=m.get(level),
+                                              convert=_optional_number))
+                m.pop("fingerprint", None)
+
+
+def _restore_gaps(plan: dict[str, Any], findings: list[Any]) -> None:
+    """Put rejected metrics behind a coverage finding back to proposed, so the gap is open for review again."""
+    for f in findings:
+        subject = f.subject or ""
+        for stage in plan["stages"]:
+            for m in stage["metrics"]:
+                hit = (f.code == "coverage-layer" and stage["id"] == subject) or (
+                    f.code == "coverage-edge" and m.get("edge") and f"{m['edge']['from']}->{m['edge']['to']}" == subject)
+                if hit and m["status"] == "rejected" and not (m.get("note") or "").strip():
+                    m["status"] = "proposed"
+
+
+def run(session: Session, output: str, existing_plan: str | None = None) -> list[str]:
+    """The whole interview; returns lines telling where the files went."""
+    plan_path = Path(output)
+    existing = None
+    current_head: dict[str, Any] = {}
+    current_stages: list[dict[str, Any]] = []
+    if existing_plan:
+        existing, _ = load_plan(existing_plan)
+        current_head = {k: v for k, v in existing.items() if k in ("pipeline", "context", "false_alarms_per_week",
+                                                                   "owner")}
+        current_stages = [{k: v for k, v in st.items() if k not in ("metrics", "downstream_reach")}
+                          for st in existing["stages"]]
+    head = ask_pipeline(session, current_head)
+    stages: list[dict[str, Any]] = []
+    touched: list[str] = []
+    if existing:
+        stages = [dict(st) for st in current_stages]
+        while True:
+            action = session.ask(Question(f"revise.{len(touched)}", "What do you want to change?",
+                                          "Add a stage, revise one, or finish and merge into the plan.", "select",
+                                          ["add a stage", "revise a stage", "finish"], default="finish"))
+            if action == "finish":
+                break
+            if action == "add a stage":
+                stage = ask_stage(session, len(stages), None, head, stages, prefix=f"revise.{len(touched)}.stage")
+                stages.append(stage)
+            else:
+                target = session.ask(Question(f"revise.{len(touched)}.which", "Which stage?", "", "select",
+                                              [st["id"] for st in stages], default=stages[0]["id"]))
+                i = [st["id"] for st in stages].index(target)
+                others = [st for st in stages if st["id"] != target]
+                stage = ask_stage(session, i, len(stages), head, others[:i], current=stages[i],
+                                  prefix=f"revise.{len(touched)}.stage")
+                if stage["id"] != target:
+                    for st in stages:
+                        st["upstream"] = [stage["id"] if u == target else u for u in st.get("upstream", [])]
+                stages[i] = stage
+            touched.append(stage["id"])
+    else:
+        count = session.ask(Question("pipeline.stage_count", "How many stages? (0 if you want to add them one by one)",
+                                     "Counting sources, gates, models and rule steps.", default=5,
+                                     validate=lambda v: None if isinstance(v, int) and 0 <= v <= 200 else
+                                     "a whole number from 0 to 200",
+                                     convert=lambda t: int(t) if str(t).strip().isdigit() else -1))
+        i = 0
+        while True:
+            stages.append(ask_stage(session, i, count or None, head, stages))
+            i += 1
+            if count and i >= count:
+                break
+            if not count and not session.ask(Question(f"stages.{i}.more", "Add another stage?",
+                                                      "Stop when every stage is in.", "confirm", default=True)):
+                break
+        touched = [st["id"] for st in stages]
+    description = {**head, "stages": stages}
+    pipeline = _pipeline(description)
+    plan = compose(pipeline, existing=existing)
+    review(session, plan, touched)
+    plan = compose(pipeline, existing=plan)
+    undecided = [m["id"] for m in all_metrics(plan) if m["status"] == "stale"
+                 and m.get("previous_status", "proposed") == "proposed" and not m.get("note")]
+    if undecided:
+        session.out(f"{len(undecided)} metric(s) no longer apply and nobody decided on them: " + ", ".join(undecided))
+        if session.ask(Question("gaps.drop_stale", "Remove them from the plan?",
+                                "They came from rules that no longer match your stages; nothing a person wrote "
+                                "is in them.", "confirm", default=True)):
+            _drop(plan, set(undecided))
+    findings = lint_document(yamlio.Document(str(plan_path), plan, None))
+    if findings:
+        session.out("coverage gaps left:")
+        for f in findings:
+            session.out(f"  [{f.code}] {f.message}")
+        if session.ask(Question("gaps.fix", "Reopen the rejected metrics behind these gaps for review?",
+                                "They go back to 'proposed'; you can reject them again in code review with a "
+                                "note.", "confirm", default=True)):
+            _restore_gaps(plan, findings)
+            plan = compose(pipeline, existing=plan)
+    unused = session.unused()
+    if unused:
+        raise StagewatchError("the answers include keys no question asked: " + ", ".join(unused[:8]),
+                              expected="keys as written in a saved draft")
+    description_path = plan_path.with_name(plan_path.stem + ".pipeline.yaml")
+    if plan_path.exists() and not existing_plan:
+        existing_on_disk, _ = load_plan(str(plan_path))
+        plan = compose(pipeline, existing=_merge_statuses(plan, existing_on_disk))
+    yamlio.write_atomic(description_path, yamlio.dump(description))
+    yamlio.write_atomic(plan_path, dump(plan))
+    n = len(all_metrics(plan))
+    decided = sum(1 for m in all_metrics(plan) if m["status"] != "proposed")
+    return [f"wrote {plan_path}: {n} metrics, {decided} decided in this interview",
+            f"wrote {description_path}: the pipeline description (use it with `stagewatch propose`)"]
+
+
+def _drop(plan: dict[str, Any], ids: set[str]) -> None:
+    for stage in plan["stages"]:
+        stage["metrics"] = [m for m in stage["metrics"] if m["id"] not in ids]
+    for key in ("pipeline_metrics", "retired_metrics"):
+        if key in plan:
+            plan[key] = [m for m in plan[key] if m["id"] not in ids]
+
+
+def _merge_statuses(fresh: dict[str, Any], on_disk: dict[str, Any]) -> dict[str, Any]:
+    """A plan already at the output path: its human decisions win over this interview's defaults."""
+    old = {m["id"]: m for m in all_metrics(on_disk)}
+    for stage in fresh["stages"]:
+        stage["metrics"] = [old.get(m["id"], m) if "fingerprint" not in old.get(m["id"], {"fingerprint": 1})
+                            else m for m in stage["metrics"]]
+    return fresh
+
+
+def _pipeline(description: dict[str, Any]) -> spec.Pipeline:
+    doc = yamlio.Document("<interview>", description, None)
+    pipeline = spec.from_document(doc)
+    PipelineGraph.build(pipeline, doc)
+    return pipeline
+
+
+# --- drafts and the command -----------------------------------------------------------------------------------
+
+
+def save_draft(path: Path, session: Session, output: str, existing_plan: str | None) -> None:
+    data = {"draft_version": DRAFT_VERSION, "output": output, "plan": existing_plan,
+            "answers": {**session.known, **session.answers}}
+    yamlio.write_atomic(path, "# stagewatch interview draft: resume with `stagewatch interview --resume THIS`\n"
+                        + yamlio.dump(data))
+
+
+def load_answers(path: str) -> dict[str, Any]:
+    doc = yamlio.load(path)
+    data = doc.data
+    if isinstance(data, dict) and "draft_version" in data:
+        return data
+    if not isinstance(data, dict):
+        raise StagewatchError("an answers file is a mapping of question keys to answers", file=path, line=1,
+                              expected="pipeline.name: my-pipeline")
+    return {"answers": data}
+
+
+def command(args: argparse.Namespace) -> int:
+    known: dict[str, Any] = {}
+    output = args.output
+    existing_plan = args.plan
+    if args.resume:
+        draft = load_answers(args.resume)
+        known.update(draft.get("answers", {}))
+        output = output or draft.get("output")
+        existing_plan = existing_plan or draft.get("plan")
+    if args.answers:
+        known.update(load_answers(args.answers)["answers"])
+    output = output or existing_plan or "plan.yaml"
+    interactive = not args.answers
+    if interactive and not has_terminal():
+        raise StagewatchError("the interview needs a terminal; without one, replay answers with "
+                              "`stagewatch interview --answers FILE`, or write a pipeline description and run "
+                              "`stagewatch propose PIPELINE.yaml -o PLAN.yaml`")
+    session = Session(known, interactive=interactive)
+    draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
+    try:
+        lines = run(session, output, existing_plan)
+    except Interrupted:
+        save_draft(draft_path, session, output, existing_plan)
+        print(f"\nstopped; your answers are saved in {draft_path}\n"
+              f"continue with: stagewatch interview --resume {draft_path}", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    for line in lines:
+        print(line)
+    if args.resume and draft_path.exists():
+        draft_path.unlink()
+        print(f"removed the draft {draft_path}: everything in it is in the plan now")
+    return EXIT_OK
+
+
+def add_parser(sub: Any) -> None:
+    p = sub.add_parser("interview", help="build a plan by answering questions in the terminal",
+                       description="Walk through the pipeline stage by stage, review the proposal, and write a "
+                       "lint-clean plan and its pipeline description. Ctrl-C saves a draft. With PLAN.yaml, "
+                       "reopen that plan to add or revise stages, then merge as propose does.")
+    p.add_argument("plan", nargs="?", metavar="PLAN.yaml", help="an existing plan to revise")
+    p.add_argument("-o", "--output", metavar="PLAN.yaml", help="where to write the plan (default: plan.yaml)")
+    p.add_argument("--resume", metavar="DRAFT", help="continue an interview saved on Ctrl-C")
+    p.add_argument("--answers", metavar="FILE", help="replay answers from FILE without a terminal (unanswered "
+                   "questions take their defaults)")
+    p.set_defaults(func=command)
+
+
+def dump_answers(session: Session) -> str:
+    return yaml.safe_dump(session.answers, sort_keys=False)
