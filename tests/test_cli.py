@@ -102,3 +102,13 @@ def test_the_readme_example_goes_through_propose_lint_render(tmp_path):
     assert main(["render", str(plan), "-o", str(tmp_path / "review")]) == 0
     text = (tmp_path / "review" / "plan.md").read_text()
     assert "`label_scanner` → `route_classifier`" in text
+
+
+def test_unwritable_output_is_a_clear_error(write, tmp_path, capsys):
+    source = write("p.yaml", SMALL)
+    blocker = tmp_path / "file"
+    blocker.write_text("x")
+    assert main(["propose", str(source), "-o", str(blocker / "plan.yaml")]) == 2
+    assert main(["propose", str(source), "-o", str(tmp_path)]) == 2
+    err = capsys.readouterr().err
+    assert "cannot write here" in err and "directory" in err and "Traceback" not in err

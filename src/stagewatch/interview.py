@@ -122,7 +122,7 @@ class Session:
                                       expected=f"'{question.key}: ...' in the answers file")
             value = question.default
         else:
-            self.out(f"  ? {question.help}")
+            self.out(f"  why: {question.help}" if question.help else "")
             value = prompt(question)
         self.answers[question.key] = value
         return value

@@ -61,7 +61,9 @@ def environment() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(data_dir("templates"))),
                              keep_trailing_newline=True,
                              trim_blocks=True, lstrip_blocks=True, autoescape=False)
-    env.filters.update(cell=md_cell, text=md_text, mid=mermaid_id, mlabel=mermaid_label, th=threshold,
+    from stagewatch.propose import small
+
+    env.filters.update(small=small, cell=md_cell, text=md_text, mid=mermaid_id, mlabel=mermaid_label, th=threshold,
                        stat=lambda s: STATISTIC_NAMES.get(s, s))
     return env
 

@@ -160,8 +160,13 @@ def dump(data: Any) -> str:
 def write_atomic(path: str | os.PathLike[str], text: str) -> None:
     """Write ``text`` to ``path`` so that a reader sees the old file or the new one, never half of either."""
     target = Path(path)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    if target.is_dir():
+        raise StagewatchError("this is a directory; a file name is needed here", file=str(target))
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
+    except OSError as exc:
+        raise StagewatchError(f"cannot write here: {exc.strerror}", file=str(target)) from None
     try:
         with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as handle:
             handle.write(text)

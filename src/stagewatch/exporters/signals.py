@@ -109,6 +109,11 @@ class Signal:
         return self.metric["window"]
 
     @property
+    def check_labels(self) -> str:
+        """The label matchers of this check's own series, as written in promtool series and selectors."""
+        return f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+
+    @property
     def for_(self) -> str:
         return "0s"
 
@@ -152,7 +157,7 @@ class ShareSignal(Signal):
         p0 = self.baseline()
         per_step = 1000.0
         shares = [p0 if value is None or i < start else p0 + value for i in range(steps)]
-        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        labels = self.check_labels
         out = Series()
         out.add(f"stagewatch_check_items_total{{{labels}}}", counter([per_step] * steps))
         out.add(f"stagewatch_check_matches_total{{{labels}}}", counter([per_step * s for s in shares]))
@@ -176,7 +181,7 @@ class CountSignal(Signal):
 
     def simulate(self, value, steps, start, step_s):
         rate = 10.0  # items per second
-        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        labels = self.check_labels
         per = [rate * step_s * (1 if value is None or i < start else 1 + value) for i in range(steps)]
         out = Series()
         out.add(f"stagewatch_check_items_total{{{labels}}}", counter(per))
@@ -246,7 +251,7 @@ class BinSignal(Signal):
         fault = self.shares_for(value) if value is not None else ref
         out = Series()
         for i in range(b):
-            labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}", bin="{i}"'
+            labels = f'{self.check_labels}, bin="{i}"'
             per = [1000.0 * (ref[i] if value is None or t < start else fault[i]) for t in range(steps)]
             out.add(f"stagewatch_check_bin_items_total{{{labels}}}", counter(per))
             out.add(f"stagewatch_reference_share{{{labels}}}", [ref[i]] * steps)
@@ -277,7 +282,7 @@ class GaugeStatisticSignal(Signal):
         return f"max by (pipeline, stage, check) (stagewatch_check_statistic{s})"
 
     def simulate(self, value, steps, start, step_s):
-        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        labels = self.check_labels
         out = Series()
         out.add(f"stagewatch_check_statistic{{{labels}}}",
                 [0.0 if value is None or i < start else value for i in range(steps)])
@@ -300,7 +305,7 @@ class CounterLevelSignal(Signal):
         return f"sum by (pipeline, stage, check) (increase(stagewatch_check_matches_total{s}[{self.window}]))"
 
     def simulate(self, value, steps, start, step_s):
-        labels = f'pipeline="{self.pipeline}", stage="{self.stage}", check="{self.check}"'
+        labels = self.check_labels
         per = [0.0] * steps
         if value is not None and start < steps:
             per[start] = value  # the events happen at once, just after `start`
@@ -415,7 +420,7 @@ class RatioToReferenceSignal(GaugeLevelSignal):
         ratios = self.gauge_values(value, steps, start, step_s)
         family = FAMILIES[self.family_key]
         labels = f'pipeline="{self.pipeline}", stage="{self.stage}"'
-        c = labels + f', check="{self.check}"'
+        c = self.check_labels
         out = Series()
         if family.type == "histogram":
             out.add(f"{family.name}_count{{{labels}}}", counter([100.0] * steps))
