@@ -271,3 +271,24 @@ def test_any_valid_pipeline_exports_rules_promtool_accepts(tmp_path_factory, des
     assert result.returncode == 0, result.stdout + result.stderr
     am = _run(_tool("amtool"), "check-config", str(work / "out" / "alertmanager.yml"))
     assert am.returncode == 0, am.stdout + am.stderr
+
+
+def test_hostile_free_text_stays_inert_in_rules_and_routing(tmp_path, write):
+    from conftest import SMALL
+
+    source = write("p.yaml", SMALL.replace("context: business", 'context: business\nowner: \'ops "night" team\''))
+    plan = compose(load_pipeline(str(source)))
+    plan["stages"][1]["metrics"].append({
+        "id": "scorer.output.refunds", "layer": "output", "status": "accepted", "source": "manual",
+        "measure": "refund share {{ range $x := . }}", "statistic": "proportion", "params": {"baseline": 0.02},
+        "window": "1h", "reference": "28d", "warn": None, "critical": 0.05, "direction": "above",
+        "severity": "page", "catches": ["concept-drift"], "why": "{{ template \"x\" }} <script>alert(1)</script>"})
+    export_prometheus(plan, str(tmp_path / "out"))
+    rules = sorted((tmp_path / "out" / "rules").glob("*.yml"))
+    result = _run(_tool("promtool"), "check", "rules", *map(str, rules))
+    assert result.returncode == 0, result.stdout + result.stderr
+    assert "{{" not in (tmp_path / "out" / "rules" / "scorer.rules.yml").read_text()
+    tests = sorted((tmp_path / "out" / "tests").glob("scorer.*.yml"))
+    assert _run(_tool("promtool"), "test", "rules", *map(str, tests)).returncode == 0
+    am = _run(_tool("amtool"), "check-config", str(tmp_path / "out" / "alertmanager.yml"))
+    assert am.returncode == 0, am.stdout + am.stderr
