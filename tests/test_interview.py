@@ -285,3 +285,13 @@ def test_interview_in_tmux_with_default_answers(tmp_path):
         assert len(plan["stages"]) == 5
     finally:
         _tmux("kill-session", "-t", session)
+
+
+def test_a_second_interview_keeps_the_earlier_description(tmp_path):
+    out = tmp_path / "plan.yaml"
+    assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
+    description = tmp_path / "plan.pipeline.yaml"
+    description.write_text(description.read_text() + "# my own comment\n")
+    hand_edited = description.read_text()
+    assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
+    assert (tmp_path / "plan.pipeline.previous.yaml").read_text() == hand_edited

@@ -153,3 +153,13 @@ def test_failed_propose_writes_nothing(tmp_path, write):
         propose(str(source), str(out))
     assert out.read_bytes() == before
     assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []
+
+
+def test_window_auto_written_by_a_reviewer_is_sized_again(tmp_path, write):
+    source = write("p.yaml", SMALL)
+    out = tmp_path / "plan.yaml"
+    propose(str(source), str(out))
+    _edit(out, "scorer.output.score_drift", window="auto", note="size this again please")
+    propose(str(source), str(out))
+    metric = _metrics(out)["scorer.output.score_drift"]
+    assert metric["window"] != "auto" and metric["note"] == "size this again please"

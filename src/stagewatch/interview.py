@@ -451,12 +451,18 @@ def run(session: Session, output: str, existing_plan: str | None = None) -> list
     if plan_path.exists() and not existing_plan:
         existing_on_disk, _ = load_plan(str(plan_path))
         plan = compose(pipeline, existing=_merge_statuses(plan, existing_on_disk))
-    yamlio.write_atomic(description_path, yamlio.dump(description))
+    text = yamlio.dump(description)
+    kept = []
+    if description_path.exists() and description_path.read_text(encoding="utf-8") != text:
+        previous = description_path.with_name(plan_path.stem + ".pipeline.previous.yaml")
+        description_path.replace(previous)  # never overwrite what may be a hand-edited description
+        kept.append(f"kept the earlier description as {previous}")
+    yamlio.write_atomic(description_path, text)
     yamlio.write_atomic(plan_path, dump(plan))
     n = len(all_metrics(plan))
     decided = sum(1 for m in all_metrics(plan) if m["status"] != "proposed")
     return [f"wrote {plan_path}: {n} metrics, {decided} decided in this interview",
-            f"wrote {description_path}: the pipeline description (use it with `stagewatch propose`)"]
+            f"wrote {description_path}: the pipeline description (use it with `stagewatch propose`)", *kept]
 
 
 def _drop(plan: dict[str, Any], ids: set[str]) -> None:

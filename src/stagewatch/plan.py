@@ -128,6 +128,8 @@ def _apply_sizing(metric: dict[str, Any], traffic: sizing.Traffic, budget: sizin
     work["name"] = metric["id"]
     if traffic.label_delay and _is_quality(metric):
         work["_label_delay"] = traffic.label_delay
+    if not refresh and metric.get("window") == "auto":
+        refresh = True  # a reviewer wrote "auto": size this metric again (thresholds included)
     if not refresh:
         # A reviewer's numbers stand; sizing only explains them.
         result = sizing.size_metric({**work, "window": metric["window"]}, traffic, budget)
