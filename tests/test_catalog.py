@@ -108,9 +108,9 @@ def test_every_kind_of_stage_gets_all_three_layers():
 
 
 def test_duplicate_rule_ids_are_rejected(tmp_path):
-    text = (load_catalog.__module__ and "rules:\n" + "".join(
+    text = "rules:\n" + "".join(
         f"  - id: same\n    scope: pipeline\n    metrics:\n      - {{name: m{i}, layer: output, measure: x, "
-        f"statistic: level, direction: above, severity: ticket, catches: [fault], why: y.}}\n" for i in range(2)))
+        f"statistic: level, direction: above, severity: ticket, catches: [fault], why: y.}}\n" for i in range(2))
     (tmp_path / "a.yaml").write_text(text)
     with pytest.raises(StagewatchError, match="already used") as info:
         load_catalog(tmp_path)

@@ -14,8 +14,6 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
 
-import yaml
-
 from stagewatch import durations, spec, yamlio
 from stagewatch.errors import EXIT_INTERRUPTED, EXIT_OK, StagewatchError
 from stagewatch.graph import PipelineGraph
@@ -555,7 +553,3 @@ def add_parser(sub: Any) -> None:
     p.add_argument("--answers", metavar="FILE", help="replay answers from FILE without a terminal (unanswered "
                    "questions take their defaults)")
     p.set_defaults(func=command)
-
-
-def dump_answers(session: Session) -> str:
-    return yaml.safe_dump(session.answers, sort_keys=False)

@@ -9,7 +9,7 @@ import jsonschema
 
 from stagewatch import durations, yamlio
 from stagewatch.errors import StagewatchError
-from stagewatch.plan import all_metrics, budget_summary, pipeline_of
+from stagewatch.plan import budget_summary, pipeline_of
 from stagewatch.resources import validator
 
 LAYERS = ("software", "input", "output")
@@ -168,7 +168,3 @@ def _coverage(doc: yamlio.Document) -> Iterator[Finding]:
                     yield Finding(path, doc.line_of(("stages", i, "upstream")), "coverage-edge",
                                   f"hand-off {up} -> {stage['id']} has no check on its {side} side "
                                   f"(stage '{owner}')", f"{up}->{stage['id']}")
-
-
-def count_metrics(plan: dict[str, Any]) -> int:
-    return len(all_metrics(plan))

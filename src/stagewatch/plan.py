@@ -13,7 +13,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from stagewatch import durations, sizing, yamlio
+from stagewatch import durations, sizing, stats, yamlio
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
@@ -105,8 +105,6 @@ def _draft(proposal: Proposal, change_rate: str) -> dict[str, Any]:
 
 
 def _unit(statistic: str, params: dict[str, Any] | None) -> str:
-    from stagewatch import stats
-
     if statistic == stats.BURN_RATE:
         return "burn rate"
     return stats.make(statistic, **(params or {})).unit

@@ -44,7 +44,6 @@ def build(instrumentation: dict, registry: CollectorRegistry) -> dict:
 def tick(instrumentation: dict, metrics: dict, fault: str | None, now: float) -> None:
     pipeline = instrumentation["pipeline"]
     checks = instrumentation["checks"]
-    fault_stage = fault.split(".", 1)[0] if fault else None
     for fam in instrumentation["families"]:
         metric = metrics[fam["name"]]
         name = fam["name"]
@@ -106,7 +105,6 @@ def tick(instrumentation: dict, metrics: dict, fault: str | None, now: float) ->
                 metric.labels(**base).set(now - (400 if faulty else 1) * 86400)
             elif name == "stagewatch_inference_duration_seconds":
                 metric.labels(**base).observe(1 + 2 * critical if faulty else 1.0)
-    del fault_stage
 
 
 def _share(instrumentation: dict, check: str) -> float:

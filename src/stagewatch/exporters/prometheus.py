@@ -259,10 +259,10 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
     fast = max((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=14.4)
     slow = min((p["burn_rate"] for p in pairs if p["severity"] == "ticket"), default=1.0)
     page_min = min((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=6.0)
-    cases = [("fast burn", 0, min(0.5, fast * budget * 5), list(expected)),
-             ("slow burn", None, min(0.9, (slow + page_min) / 2 * budget), [lvl for lvl in expected if lvl == "warn"]),
-             ("within budget", None, budget * 0.1, [])]
-    for label, _, ratio, firing in cases:
+    cases = [("fast burn", min(0.5, fast * budget * 5), list(expected)),
+             ("slow burn", min(0.9, (slow + page_min) / 2 * budget), [lvl for lvl in expected if lvl == "warn"]),
+             ("within budget", budget * 0.1, [])]
+    for label, ratio, firing in cases:
         steps = 22
         start = 10 if label == "fast burn" else 0
         eval_index = 20
@@ -435,7 +435,6 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
     built = build(plan)
     out = Path(target)
     files: dict[Path, str] = {}
-    test_files = []
     for group in built.groups:
         if not group.rules:
             continue
@@ -450,13 +449,11 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
             files[test_file] = RULES_HEADER + yamlio.dump({
                 "rule_files": [f"../rules/{group.file}"], "evaluation_interval": interval,
                 "tests": by_step[interval]})
-            test_files.append(test_file)
     files[out / "alertmanager.yml"] = AM_HEADER + yamlio.dump(built.alertmanager)
     files[out / "instrumentation.json"] = json.dumps(built.instrumentation, indent=2) + "\n"
     files[out / "instrumentation.md"] = instrumentation_markdown(built.instrumentation)
     example = Path(__file__).with_name("example_exporter.py")
     files[out / "example_exporter.py"] = example.read_text(encoding="utf-8")
-    del test_files
     for path, text in files.items():
         yamlio.write_atomic(path, text)
     alerts = sum(g.alerts for g in built.groups)
