@@ -6,7 +6,7 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.stagewatch-installed
 SOURCES := pyproject.toml $(shell find src catalog templates -type f -not -name '*.pyc' 2>/dev/null)
 
-.PHONY: demo test install tools bench clean
+.PHONY: demo test install tools bench check clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -28,6 +28,12 @@ demo: install
 
 test: install tools
 	$(BIN)/python -m pytest
+
+# Static checks for contributors (not part of `make test`): pyflakes-level ruff rules and mypy.
+check: install
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[dev]"
+	$(BIN)/ruff check --select F,E9 src tests benchmarks
+	$(BIN)/mypy src/stagewatch
 
 bench: install
 	$(BIN)/python benchmarks/bench_plan.py

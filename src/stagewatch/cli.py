@@ -12,7 +12,7 @@ import os
 import sys
 import tempfile
 import traceback
-from typing import Callable, Sequence
+from typing import Callable, NoReturn, Sequence
 
 from stagewatch import __version__
 from stagewatch.errors import (EXIT_FINDINGS, EXIT_INTERNAL, EXIT_INTERRUPTED, EXIT_OK, EXIT_USAGE,
@@ -20,7 +20,7 @@ from stagewatch.errors import (EXIT_FINDINGS, EXIT_INTERNAL, EXIT_INTERRUPTED, E
 
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message: str) -> None:  # usage errors: one line and exit 2, as argparse does, plus a hint
+    def error(self, message: str) -> NoReturn:  # usage errors: one line and exit 2, as argparse does, plus a hint
         self.print_usage(sys.stderr)
         print(f"{self.prog}: error: {message}\n(run '{self.prog} --help' for details)", file=sys.stderr)
         raise SystemExit(EXIT_USAGE)

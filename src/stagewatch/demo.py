@@ -24,6 +24,7 @@ def run_demo(out_dir: str) -> list[str]:
         lines.append(f"wrote {pipeline_path}: the demo pipeline, a fruit packhouse grading line (7 stages)")
     plan_path = out / "plan.yaml"
     _, rep = propose(str(pipeline_path), str(plan_path))
+    assert rep is not None  # written to a file, so there is a report
     lines.extend(rep.lines())
     findings = lint_file(str(plan_path))
     lines.append(f"lint {plan_path}: " + ("clean" if not findings else f"{len(findings)} finding(s)"))

@@ -57,7 +57,7 @@ def prompt(question: Question) -> Any:
 
     validate = _questionary_validator(question)
     if question.kind == "select":
-        q = questionary.select(question.text, choices=question.choices, default=question.default, **IO)
+        q = questionary.select(question.text, choices=question.choices or [], default=question.default, **IO)
     elif question.kind == "checkbox":
         choices = [questionary.Choice(c, checked=c in (question.default or [])) for c in question.choices or []]
         q = questionary.checkbox(question.text, choices=choices, validate=validate or (lambda _: True), **IO)
@@ -79,13 +79,15 @@ def _questionary_validator(question: Question) -> Callable[[Any], bool | str] | 
     if not question.validate:
         return None
 
+    rule = question.validate
+
     def check(value: Any) -> bool | str:
         if question.kind == "text" and question.convert:
             try:
                 value = question.convert(value)
             except ValueError as exc:
                 return str(exc)
-        problem = question.validate(value)
+        problem = rule(value)
         return True if problem is None else problem
 
     return check

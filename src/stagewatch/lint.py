@@ -61,7 +61,7 @@ def _short(error: jsonschema.ValidationError) -> str:
     return error.message
 
 
-def _located(doc: yamlio.Document) -> Iterator[tuple[tuple, dict[str, Any], str]]:
+def _located(doc: yamlio.Document) -> Iterator[tuple[tuple[Any, ...], dict[str, Any], str | None]]:
     """(path in the document, metric, owner) for every metric."""
     for i, stage in enumerate(doc.data["stages"]):
         for j, metric in enumerate(stage.get("metrics", [])):

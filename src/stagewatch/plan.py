@@ -216,7 +216,7 @@ _LAYER_ORDER = {"software": 0, "input": 1, "output": 2}
 
 
 def _sort_key(metric: dict[str, Any], position: dict[str, int]) -> tuple:
-    return (_LAYER_ORDER.get(metric.get("layer"), 3), position.get(metric["id"], 10**9), metric["id"])
+    return (_LAYER_ORDER.get(str(metric.get("layer")), 3), position.get(metric["id"], 10**9), metric["id"])
 
 
 def _assemble(pipeline: Pipeline, graph: PipelineGraph, metrics: dict[str, dict[str, Any]], kept: set[str],

@@ -113,7 +113,9 @@ class Pipeline:
 
 
 def _field(data: dict[str, Any]) -> FieldSpec:
-    return FieldSpec(**{k: data.get(k) for k in FIELD_KEYS})
+    return FieldSpec(name=data["name"], type=data["type"], unknown_value=data.get("unknown_value"),
+                     range=data.get("range"), categories=data.get("categories"),
+                     description=data.get("description"))
 
 
 def from_document(doc: yamlio.Document) -> Pipeline:

@@ -17,7 +17,7 @@ from __future__ import annotations
 import math
 from functools import lru_cache
 from dataclasses import dataclass
-from typing import Protocol
+from typing import Protocol, TypedDict
 
 import numpy as np
 from scipy import optimize
@@ -370,11 +370,19 @@ def burn_rate(budget_share: float, long_window_s: float, period_s: float) -> flo
     return budget_share * period_s / long_window_s
 
 
-def burn_rate_alerts(period_s: float) -> list[dict[str, float | str]]:
+class BurnRateAlert(TypedDict):
+    severity: str
+    long_window_s: float
+    short_window_s: float
+    burn_rate: float
+    budget_share: float
+
+
+def burn_rate_alerts(period_s: float) -> list[BurnRateAlert]:
     """Multiwindow, multi-burn-rate alert pairs for an SLO period; the short window is 1/12 of the long one."""
-    out = []
-    for severity, long_s, share in BURN_RATE_WINDOWS:
-        long_s = min(long_s, period_s)
+    out: list[BurnRateAlert] = []
+    for severity, long_window, share in BURN_RATE_WINDOWS:
+        long_s = float(min(long_window, period_s))
         out.append({"severity": severity, "long_window_s": long_s, "short_window_s": long_s / 12,
                     "burn_rate": burn_rate(share, long_s, period_s), "budget_share": share})
     return out

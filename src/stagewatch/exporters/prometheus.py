@@ -108,7 +108,8 @@ class Case:
 def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str) -> dict[str, str]:
     drift = metric["layer"] in ("input", "output") and bool(
         set(metric.get("catches", [])) & {"data-drift", "concept-drift", "upstream-change"})
-    labels = {"severity": severity, "level": level, "layer": metric["layer"], "drift": "true" if drift else "false"}
+    labels: dict[str, str] = {"severity": severity, "level": level, "layer": metric["layer"],
+                              "drift": "true" if drift else "false"}
     if owner:
         labels["owner"] = owner
     return labels
@@ -247,11 +248,12 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
         clauses = [f"({record}:rate{p['long_window']}{sel} > {_fmt(p['burn_rate'] * budget)}\n"
                    f"   and {record}:rate{p['short_window']}{sel} > {_fmt(p['burn_rate'] * budget)})" for p in mine]
         threshold = min(p["burn_rate"] for p in mine)
-        rule = {"alert": name, "expr": "\n  or ".join(clauses), "labels": _labels(metric, owner, level, severity),
-                "annotations": _annotations(metric, level, threshold)}
-        rule["annotations"]["summary"] = _inert(
+        annotations = _annotations(metric, level, threshold)
+        annotations["summary"] = _inert(
             f"{metric['id']}: error budget of the {target:g} SLO burning at more than {_fmt(threshold)}x "
             f"({', '.join(p['long_window'] + '/' + p['short_window'] for p in mine)})")
+        rule: dict[str, Any] = {"alert": name, "expr": "\n  or ".join(clauses),
+                                "labels": _labels(metric, owner, level, severity), "annotations": annotations}
         group.rules.append(rule)
         group.alerts += 1
         expected[level] = {"exp_labels": {"pipeline": pipeline, "stage": stage, "check": metric["id"],
@@ -351,14 +353,14 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, An
     graph = nx.DiGraph()
     graph.add_nodes_from(s["id"] for s in plan["stages"])
     graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []))
-    order = {s["id"]: i for i, s in enumerate(plan["stages"])}
+    order: dict[str, int] = {s["id"]: i for i, s in enumerate(plan["stages"])}
     inhibit = [{
         # A critical alert hides the warn alert of the same check.
         "source_matchers": ['level="critical"'], "target_matchers": ['level="warn"'],
         "equal": ["alertname", "pipeline", "stage"],
     }]
     for stage in plan["stages"]:
-        below = sorted(nx.descendants(graph, stage["id"]), key=order.get)
+        below = sorted(nx.descendants(graph, stage["id"]), key=lambda n: order[n])
         if not below:
             continue
         inhibit.append({

@@ -14,7 +14,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass, field
-from typing import Any, ClassVar
+from typing import Any, ClassVar, Sequence
 
 from stagewatch import durations
 
@@ -77,8 +77,8 @@ class Series:
 
     values: dict[str, list[float | None]] = field(default_factory=dict)
 
-    def add(self, key: str, values: list[float | None]) -> None:
-        self.values[key] = values
+    def add(self, key: str, values: Sequence[float | None]) -> None:
+        self.values[key] = list(values)
 
 
 def counter(rates: list[float]) -> list[float]:
