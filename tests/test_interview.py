@@ -101,8 +101,9 @@ def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
     script += [CLEAR + "0" + ENTER + CLEAR + "-3" + ENTER + CLEAR + "lots" + ENTER + CLEAR + "2" + ENTER]
     script += [ENTER, CLEAR + "2" + ENTER]
     script += [CLEAR + "Bad Name" + ENTER + CLEAR + "pipeline" + ENTER + CLEAR + "feed" + ENTER, ENTER, ENTER, ENTER,
-               CLEAR + "0" + ENTER + CLEAR + "fast" + ENTER + CLEAR + "500" + ENTER, ENTER]
-    script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
+               CLEAR + "0" + ENTER + CLEAR + "fast" + ENTER + CLEAR + "500" + ENTER,
+               "weight:kilos" + ENTER + CLEAR + "weight:numeric, site:category" + ENTER, ENTER]
+    script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
     script += [ENTER] * 6
     keys(script)
     interview.run(interview.Session(interactive=True, out=lambda _: None), str(tmp_path / "plan.yaml"))
@@ -111,6 +112,8 @@ def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
     plan = yaml.safe_load((tmp_path / "plan.yaml").read_text())
     assert plan["false_alarms_per_week"] == 2 and plan["stages"][0]["volume_per_hour"] == 500
     assert [s["id"] for s in plan["stages"]] == ["feed", "model"]
+    assert plan["stages"][0]["inputs"] == [{"name": "weight", "type": "numeric"}, {"name": "site", "type": "category"}]
+    assert any(m["id"] == "feed.input.weight_drift" for m in plan["stages"][0]["metrics"])
 
 
 def test_prompt_validators_give_the_reason():
@@ -122,6 +125,9 @@ def test_prompt_validators_give_the_reason():
     assert check("12") is True
     ids = interview.Question("id", "Stage id", "", validate=interview._name_validator({"feed"}))
     assert interview._questionary_validator(ids)("feed") == "there is already a stage called 'feed'"
+    fields = interview.Question("f", "Input fields", "", convert=interview._parse_fields)
+    assert "type one of numeric" in interview._questionary_validator(fields)("weight:kilos")
+    assert "listed twice" in interview._questionary_validator(fields)("a:flag, a:text")
 
 
 def test_validators_directly():
@@ -141,7 +147,7 @@ def test_ctrl_c_saves_a_draft_and_resume_loses_nothing(keys, tmp_path, capsys):
     assert saved["pipeline.name"] == "grading" and saved["stages.0.id"] == "feed" and saved["stages.0.kind"] == "source"
     assert "--resume" in capsys.readouterr().err and not out.exists()
     # Resume: only the remaining questions are asked.
-    k = keys([ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER] * 6)
+    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 6)
     assert main(["interview", "--resume", str(draft)]) == 0
     assert k.asked[0] == "stages.0.modality"
     plan = yaml.safe_load(out.read_text())

@@ -28,6 +28,8 @@ SERVING = ["online", "batch", "device"]
 CHANGE_RATES = ["minutes", "hours", "days", "months"]
 LABELS = ["delayed", "immediate", "none"]
 LAYERS = ("software", "input", "output")
+STRUCTURED = ("tabular", "events", "timeseries")
+FIELD_TYPES = ("numeric", "category", "text", "duration", "flag")
 
 Answers = dict[str, Any]
 
@@ -76,7 +78,7 @@ def prompt(question: Question) -> Any:
 
 
 def _questionary_validator(question: Question) -> Callable[[Any], bool | str] | None:
-    if not question.validate:
+    if not question.validate and not (question.kind == "text" and question.convert):
         return None
 
     rule = question.validate
@@ -87,7 +89,7 @@ def _questionary_validator(question: Question) -> Callable[[Any], bool | str] | 
                 value = question.convert(value)
             except ValueError as exc:
                 return str(exc)
-        problem = rule(value)
+        problem = rule(value) if rule else None
         return True if problem is None else problem
 
     return check
@@ -153,6 +155,30 @@ def _optional_number(text: Any) -> float | None:
     if text is None or str(text).strip() == "":
         return None
     return _number(text)
+
+
+def _parse_fields(text: Any) -> list[dict[str, str]]:
+    """``"weight_g:numeric, variety:category"`` -> field dicts; ValueError with the reason otherwise."""
+    import re
+
+    if isinstance(text, list):  # from an answers file or a draft
+        return text
+    out: list[dict[str, str]] = []
+    for part in [p.strip() for p in str(text or "").split(",") if p.strip()]:
+        name, _, kind = part.partition(":")
+        name, kind = name.strip(), kind.strip()
+        if not re.match(r"^[a-z][a-z0-9_]{0,62}$", name):
+            raise ValueError(f"'{name}': field names use lower case letters, digits or _")
+        if kind not in FIELD_TYPES:
+            raise ValueError(f"'{part}': write name:type with type one of {', '.join(FIELD_TYPES)}")
+        if any(f["name"] == name for f in out):
+            raise ValueError(f"'{name}' is listed twice")
+        out.append({"name": name, "type": kind})
+    return out
+
+
+def _fields_text(fields: list[dict[str, Any]]) -> str:
+    return ", ".join(f"{f['name']}:{f['type']}" for f in fields)
 
 
 def _duration(value: Any) -> str | None:
@@ -238,6 +264,14 @@ def ask_stage(s: Session, index: int, total: int | None, head: dict[str, Any], e
         "Sets how many samples a window holds, hence how short a window can be and still be trusted.",
         default=cur.get("volume_per_hour", previous.get("volume_per_hour", 1000)), validate=_positive,
         convert=_number))
+    if stage["modality"] in STRUCTURED:
+        fields = s.ask(Question(
+            f"{key}.inputs", "Input fields to watch, as name:type, comma separated (blank for none)",
+            "Each field gets its own drift, missing-share and range checks; types: " + ", ".join(FIELD_TYPES)
+            + ". Ranges and categories can be added in the YAML later.",
+            default=_fields_text(cur.get("inputs", [])), convert=_parse_fields))
+        if fields:
+            stage["inputs"] = fields
     serving = cur.get("serving", previous.get("serving", "online"))
     change_rate = cur.get("change_rate", spec.DEFAULT_CHANGE_RATE[head["context"]])
     labels = cur.get("labels", "delayed" if stage["kind"] == "learned" else "none")
@@ -281,10 +315,13 @@ def ask_stage(s: Session, index: int, total: int | None, head: dict[str, Any], e
         stage["labels"] = labels
         if labels == "delayed":
             stage["label_delay"] = label_delay
-    for extra in ("description", "owner", "labelled_share", "slo_target", "slo_period", "run_every", "inputs",
-                  "outputs"):
+    for extra in ("description", "owner", "labelled_share", "slo_target", "slo_period", "run_every", "outputs"):
         if extra in cur:
             stage[extra] = cur[extra]
+    if "inputs" in stage:  # keep what the YAML said about a field (range, categories ...) when its type stays
+        before = {f["name"]: f for f in cur.get("inputs", [])}
+        stage["inputs"] = [{**before[f["name"]], **f} if f["name"] in before and before[f["name"]]["type"] == f["type"]
+                           else f for f in stage["inputs"]]
     if stage["kind"] == "source":
         stage.pop("labels", None)
     return stage
