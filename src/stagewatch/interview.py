@@ -568,7 +568,7 @@ def command(args: argparse.Namespace) -> int:
     draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
     try:
         lines = run(session, output, existing_plan)
-    except Interrupted:
+    except (Interrupted, KeyboardInterrupt):  # at a prompt or while the plan is being composed
         save_draft(draft_path, session, output, existing_plan)
         print(f"\nstopped; your answers are saved in {draft_path}\n"
               f"continue with: stagewatch interview --resume {draft_path}", file=sys.stderr)
