@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+
 import pytest
 
 from conftest import all_pipelines
@@ -113,3 +115,103 @@ def test_round_up_never_goes_below():
 def test_no_traffic_is_flagged_not_a_crash():
     result = sizing.size_metric(_metric(), sizing.Traffic(0, "days"), BUDGET)
     assert "no traffic" in result["review"] and result["sizing"]["samples_per_window"] == 0
+
+
+# --- the plan's own numbers, checked by simulation ------------------------------------------------------------
+
+LOW_VOLUME = """
+pipeline: kiosk
+context: business
+stages:
+  - id: tickets
+    kind: source
+    modality: events
+    output: records
+    serving: batch
+    volume_per_hour: 60
+  - id: estimator
+    kind: learned
+    modality: tabular
+    output: value
+    upstream: [tickets]
+    serving: batch
+    volume_per_hour: 60
+    inputs:
+      - {name: amount, type: numeric}
+      - {name: desk, type: category}
+  - id: ranker
+    kind: learned
+    modality: tabular
+    output: score
+    upstream: [estimator]
+    serving: batch
+    volume_per_hour: 60
+"""
+
+PLAN_CHECKS = {
+    "psi": "estimator.input.amount_drift", "chi_square": "estimator.input.desk_mix",
+    "ks": "estimator.output.value_drift", "proportion": "estimator.input.amount_missing",
+    "quantile": "ranker.output.above_cutoff", "mean": "estimator.output.value_mean",
+    "count": "tickets.output.record_count",
+}
+
+
+def _observed(statistic, metric, n, m, shift, rng, trials):
+    """`trials` observed values of the statistic for windows of n against references of m, true change `shift`."""
+    import numpy as np
+    from scipy import optimize
+    from scipy import stats as st
+
+    n, m = int(round(n)), int(round(m)) if m else None
+    params = metric.get("params") or {}
+    if statistic in ("psi", "chi_square"):
+        k = params.get("bins") or params.get("categories")
+        p0 = np.full(k, 1 / k)
+        if statistic == "psi":
+            direction = np.linspace(-1, 1, k)
+            psi_of = lambda s: float(np.sum((p0 * (1 + s * direction) - p0) * np.log(1 + s * direction)))  # noqa
+            scale = optimize.brentq(lambda s: psi_of(s) - shift, 0, 0.99) if shift > 0 else 0.0
+            p1 = p0 * (1 + scale * direction)
+            return [stats.psi(rng.multinomial(m, p0), rng.multinomial(n, p1), smoothing=0) for _ in range(trials)]
+        u = np.zeros(k)
+        u[0], u[1] = 1 / math.sqrt(2), -1 / math.sqrt(2)
+        p1 = p0 + shift * np.sqrt(p0) * u
+        return [stats.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p1)) for _ in range(trials)]
+    if statistic == "ks":
+        s = 2 * st.norm.ppf((1 + shift) / 2)
+        return [st.ks_2samp(rng.normal(0, 1, m), rng.normal(s, 1, n)).statistic for _ in range(trials)]
+    if statistic in ("proportion", "quantile"):
+        p0 = 1 - params["q"] if statistic == "quantile" else params["baseline"]
+        return list(rng.binomial(n, p0 + shift, trials) / n - rng.binomial(m, p0, trials) / m)
+    if statistic == "mean":
+        return list(rng.normal(shift, 1 / math.sqrt(n), trials) - rng.normal(0, 1 / math.sqrt(m), trials))
+    return list(rng.poisson(n * (1 + shift), trials) / n - 1)  # count: relative change, reference rate known
+
+
+@pytest.mark.parametrize("statistic", sorted(PLAN_CHECKS))
+def test_plan_thresholds_hold_their_alpha_and_catch_the_stated_change(statistic, tmp_path):
+    import numpy as np
+
+    source = tmp_path / "p.yaml"
+    source.write_text(LOW_VOLUME)
+    plan = compose(load_pipeline(str(source)))
+    metric = next(m for m in all_metrics(plan) if m["id"] == PLAN_CHECKS[statistic])
+    assert metric["statistic"] == statistic
+    block = metric["sizing"]
+    n, m, alpha = block["samples_per_window"], block.get("reference_samples"), block["alpha"]
+    trials = 800 if statistic == "ks" else 4000
+    rng = np.random.default_rng(7)
+    tolerance = 3 * math.sqrt(alpha * (1 - alpha) / trials) + 2 / trials
+    two_sided = metric["direction"] == "both"
+
+    def fired(values, threshold):
+        values = np.asarray(values)
+        return float(np.mean(np.abs(values) > threshold if two_sided else values > threshold))
+
+    calm = _observed(statistic, metric, n, m, 0.0, rng, trials)
+    # No shift: at the plan's noise floor the false-alarm rate is its alpha; at its critical threshold, no more.
+    assert fired(calm, block["noise_floor"]) <= alpha + tolerance + 0.25 * alpha
+    assert fired(calm, metric["critical"]) <= alpha + tolerance
+    # A true change of the stated size makes the critical alert fire with at least the stated power.
+    shifted = _observed(statistic, metric, n, m, block["detectable_change"], rng, trials)
+    assert fired(shifted, metric["critical"]) >= block["power"] - 3 * math.sqrt(0.16 / trials)

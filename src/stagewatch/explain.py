@@ -29,7 +29,8 @@ def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
              f"  why:       {m.get('why', '')}"]
     for key, label in (("samples_per_window", "samples per window"), ("reference_samples", "reference samples"),
                        ("evaluations_per_week", "evaluations per week"), ("alpha", "alpha per evaluation"),
-                       ("noise_floor", "noise floor"), ("detectable_change", "smallest detectable change"),
+                       ("noise_floor", "noise floor"), ("detectable_change", "change the alert catches"),
+                       ("detectable_at_floor", "change the floor allows"),
                        ("power", "power"), ("expected_false_alarms_per_week", "expected false alarms/week"),
                        ("evaluation_lag", "evaluated after")):
         if key in sizing:

@@ -280,7 +280,9 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         crit_fa = stat.false_alarm(critical, chosen.n, chosen.m) * chosen.evaluations
     if warn is not None:
         warn_fa = stat.false_alarm(warn, chosen.n, chosen.m) * chosen.evaluations
-    detectable = stat.detectable(chosen.n, chosen.m, chosen.alpha, POWER)
+    at_floor = stat.detectable(chosen.n, chosen.m, chosen.alpha, POWER)
+    # What the alert itself catches: the true change whose observed value passes the critical threshold.
+    detectable = stat.detectable_at(critical, chosen.n, chosen.m, POWER) if critical is not None else at_floor
     window_text = durations.format(chosen.window)
     reference = metric.get("reference", "28d") if fixed else reference_for(metric.get("reference", "28d"),
                                                                            chosen.window)
@@ -295,8 +297,10 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         f"{_fmt(traffic.per_hour)} items per hour give {_fmt(chosen.n)} samples per {window_text} window against "
         f"{ref_text}. The {kind} budget allows {share:.3g} false alarms per week for this check, evaluated "
         f"{_fmt(chosen.evaluations)} times a week, so alpha = {chosen.alpha:.3g} per evaluation. {stat.describe()}; "
-        f"at this alpha the noise floor is {chosen.floor:.3g} ({stat.unit}), and a true change of "
-        f"{detectable:.3g} is caught with {POWER:.0%} power.")
+        f"at this alpha the noise floor is {chosen.floor:.3g} ({stat.unit}); a true change of {at_floor:.3g} would "
+        f"clear the floor with {POWER:.0%} power"
+        + (f", and one of {detectable:.3g} makes the critical alert fire with {POWER:.0%} power."
+           if critical is not None else "."))
     if notes:
         derivation += " Stagewatch " + "; ".join(notes) + "."
     elif critical is not None:
@@ -314,6 +318,7 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         "warn_alpha": _sig(warn_alpha, 3),
         "warn_noise_floor": _sig(warn_floor, 3),
         "detectable_change": _sig(detectable, 3),
+        "detectable_at_floor": _sig(at_floor, 3),
         "power": POWER,
         "expected_false_alarms_per_week": _sig(crit_fa, 3),
         "expected_false_warnings_per_week": _sig(warn_fa, 3),

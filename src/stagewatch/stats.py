@@ -82,6 +82,8 @@ class Statistic(Protocol):
 
     def detectable(self, n: float, m: float | None, alpha: float, power: float = DEFAULT_POWER) -> float: ...
 
+    def detectable_at(self, threshold: float, n: float, m: float | None, power: float = DEFAULT_POWER) -> float: ...
+
     def min_samples(self) -> int: ...
 
     def describe(self) -> str: ...
@@ -109,8 +111,15 @@ class PSI:
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
         return _noncentral_chi2_effect(self.bins - 1, alpha, power) / effective_n(n, m)
 
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        n_eff = effective_n(n, m)
+        return _noncentrality_for(self.bins - 1, threshold * n_eff, power) / n_eff
+
     def min_samples(self):
-        return 5 * self.bins  # common practice: at least 5 expected per bin for the chi-square law
+        # The chi-square law of PSI is poor in the far tail at small counts: with 12 items per bin the
+        # false-alarm rate at alpha = 1e-3 is about 3 alpha, with 50 per bin 1.4 alpha, from 100 per bin it holds
+        # down to alpha = 1e-4 (our own simulation, repeated in tests/test_sizing.py). So: 100 per bin.
+        return 100 * self.bins
 
     def describe(self):
         return (f"n_eff x PSI follows a chi-square law with {self.bins - 1} degrees of freedom when nothing "
@@ -133,6 +142,10 @@ class CategoryMix:
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
         return math.sqrt(_noncentral_chi2_effect(self.categories - 1, alpha, power) / effective_n(n, m))
+
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        n_eff = effective_n(n, m)
+        return math.sqrt(_noncentrality_for(self.categories - 1, threshold**2 * n_eff, power) / n_eff)
 
     def min_samples(self):
         return 5 * self.categories  # common practice: at least 5 expected per category
@@ -161,7 +174,10 @@ class KS:
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
         # D_observed >= D_true - (sampling deviation); the deviation stays below kstwobign.ppf(power) / sqrt(n_eff)
         # with probability `power`, so this is a conservative bound.
-        return (ks_coefficient(alpha) + float(st.kstwobign.ppf(power))) / math.sqrt(effective_n(n, m))
+        return self.detectable_at(self.floor(n, m, alpha), n, m, power)
+
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        return threshold + float(st.kstwobign.ppf(power)) / math.sqrt(effective_n(n, m))
 
     def min_samples(self):
         return 30  # common practice: the large-sample form is used from a few dozen samples on
@@ -212,6 +228,24 @@ class Proportion:
             return float("inf")
         return float(optimize.brentq(gap, 1e-12, room))
 
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        """Smallest true change whose observed change exceeds ``threshold`` with probability ``power``.
+
+        (``detectable`` above uses the pooled null variance of Fleiss et al.; this one needs only the
+        variance under the shift.)"""
+        p0 = self.baseline
+        zb = float(st.norm.ppf(power))
+        inv_m = 0.0 if m is None else 1.0 / m
+        room = 1 - p0 - 1e-12
+
+        def gap(delta: float) -> float:
+            p1 = p0 + delta
+            return delta - threshold - zb * math.sqrt(p1 * (1 - p1) / n + p0 * (1 - p0) * inv_m)
+
+        if gap(room) < 0:
+            return float("inf")
+        return float(optimize.brentq(gap, 0.0, room))
+
     def min_samples(self):
         # common practice for the normal approximation: n p >= 10 and n (1 - p) >= 10
         return math.ceil(10 / min(self.baseline, 1 - self.baseline))
@@ -259,7 +293,10 @@ class MeanShift:
         return min(1.0, self.sides * float(st.norm.sf(threshold / self._se(n, m))))
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
-        return (_z(alpha, self.sides) + float(st.norm.ppf(power))) * self._se(n, m)
+        return self.detectable_at(self.floor(n, m, alpha), n, m, power)
+
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        return threshold + float(st.norm.ppf(power)) * self._se(n, m)
 
     def min_samples(self):
         return 30  # common practice for a z-test on a mean
@@ -286,7 +323,14 @@ class CountChange:
         return min(1.0, self.sides * float(st.norm.sf(threshold * math.sqrt(n))))
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
-        return (_z(alpha, self.sides) + float(st.norm.ppf(power))) / math.sqrt(n)
+        return self.detectable_at(self.floor(n, m, alpha), n, m, power)
+
+    def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
+        # Under a rise r the relative count has standard deviation sqrt((1 + r) / n), so solve
+        # r = threshold + z(power) sqrt((1 + r) / n).
+        zb = float(st.norm.ppf(power))
+        return float(optimize.brentq(lambda r: r - threshold - zb * math.sqrt((1 + r) / n), threshold,
+                                     threshold + zb * math.sqrt((2 + threshold) / n) + 10))
 
     def min_samples(self):
         return 10  # common practice for the normal approximation of a Poisson count
@@ -299,11 +343,18 @@ class CountChange:
 @lru_cache(maxsize=4096)
 def _noncentral_chi2_effect(df: int, alpha: float, power: float) -> float:
     """Non-centrality at which a chi-square(df) test at level alpha has the given power."""
-    critical = _chi2_isf(alpha, df)
+    return _noncentrality_for(df, _chi2_isf(alpha, df), power)
+
+
+@lru_cache(maxsize=4096)
+def _noncentrality_for(df: int, critical: float, power: float) -> float:
+    """Non-centrality at which a non-central chi-square(df) exceeds ``critical`` with probability ``power``."""
 
     def gap(lam: float) -> float:
         return float(st.ncx2.sf(critical, df, lam)) - power
 
+    if gap(1e-9) >= 0:  # noise alone already exceeds `critical` that often
+        return 0.0
     high = max(1.0, critical)
     while gap(high) < 0:
         high *= 2
