@@ -215,3 +215,10 @@ def test_plan_thresholds_hold_their_alpha_and_catch_the_stated_change(statistic,
     # A true change of the stated size makes the critical alert fire with at least the stated power.
     shifted = _observed(statistic, metric, n, m, block["detectable_change"], rng, trials)
     assert fired(shifted, metric["critical"]) >= block["power"] - 3 * math.sqrt(0.16 / trials)
+
+
+def test_numbers_set_by_a_person_are_explained_not_changed():
+    result = sizing.size_metric(_metric(window="1h", critical=0.001, warn=0.0005), sizing.Traffic(2_000, "hours"),
+                                BUDGET)
+    assert result["critical"] == 0.001 and result["warn"] == 0.0005 and result["window"] == "1h"
+    assert "kept the critical threshold 0.001 as set" in result["sizing"]["derivation"]

@@ -250,6 +250,10 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                   f"{stat.min_samples()} this statistic needs; the check is unreliable at this volume")
     if math.isinf(chosen.floor):
         review = "no traffic reaches this check (0 samples per window); it cannot be sized"
+    elif fixed and critical is not None and chosen.floor > critical:
+        # A window and threshold set by a person: explain, never change them.
+        notes.append(f"kept the critical threshold {critical:g} as set, although it is below the noise floor "
+                     f"{chosen.floor:.3g} at this window: expect false alarms")
     elif critical is not None and chosen.floor > critical:
         raised = round_up(chosen.floor)
         notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at the "
@@ -261,7 +265,9 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     if warn is not None and chosen.n > 0:
         warn_alpha = min(0.5, budget.ticket_share / chosen.evaluations)
         warn_floor = stat.floor(chosen.n, chosen.m, warn_alpha)
-        if warn < warn_floor:
+        if warn < warn_floor and fixed:
+            notes.append(f"kept the warn threshold {warn:g} as set, below its noise floor {warn_floor:.3g}")
+        elif warn < warn_floor:
             raised = round_up(warn_floor)
             if critical is not None and raised >= critical:
                 notes.append(f"dropped the warn level {warn:g}: its noise floor {warn_floor:.3g} reaches the "
