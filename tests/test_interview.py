@@ -76,7 +76,7 @@ def test_a_whole_interview_with_defaults_gives_a_lint_clean_plan(keys, tmp_path)
     script += [CLEAR + "camera" + ENTER, ENTER, DOWN + ENTER, ENTER, ENTER, ENTER]  # source of images, records
     script += _learned_stage("sizer")
     script += [CLEAR + "packer" + ENTER, DOWN + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]  # rule-based gate
-    script += [ENTER] * 9  # accept all, three layers of three stages
+    script += [ENTER] * 11  # accept all: three layers of three stages, then two layers of the whole pipeline
     k = keys(script)
     out = tmp_path / "plan.yaml"
     session = interview.Session(interactive=True, out=lambda _: None)
@@ -90,6 +90,7 @@ def test_a_whole_interview_with_defaults_gives_a_lint_clean_plan(keys, tmp_path)
     assert sizer["kind"] == "learned" and sizer["labels"] == "delayed" and sizer["upstream"] == ["camera"]
     assert plan["stages"][0]["modality"] == "image" and plan["stages"][0]["output"] == "records"
     assert all(m["status"] == "accepted" for s in plan["stages"] for m in s["metrics"])
+    assert all(m["status"] == "accepted" for m in plan["pipeline_metrics"])
     description = yaml.safe_load((tmp_path / "plan.pipeline.yaml").read_text())
     assert description["pipeline"] == "grading" and len(description["stages"]) == 3
     # A learned stage with the defaults accepted took 7 questions.
@@ -104,7 +105,7 @@ def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
                CLEAR + "0" + ENTER + CLEAR + "fast" + ENTER + CLEAR + "500" + ENTER,
                "weight:kilos" + ENTER + CLEAR + "weight:numeric, site:category" + ENTER, ENTER]
     script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
-    script += [ENTER] * 6
+    script += [ENTER] * 8
     keys(script)
     interview.run(interview.Session(interactive=True, out=lambda _: None), str(tmp_path / "plan.yaml"))
     # Each invalid answer was refused at the prompt (it stayed open for the next line), so only the valid ones
@@ -147,7 +148,7 @@ def test_ctrl_c_saves_a_draft_and_resume_loses_nothing(keys, tmp_path, capsys):
     assert saved["pipeline.name"] == "grading" and saved["stages.0.id"] == "feed" and saved["stages.0.kind"] == "source"
     assert "--resume" in capsys.readouterr().err and not out.exists()
     # Resume: only the remaining questions are asked.
-    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 6)
+    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 8)
     assert main(["interview", "--resume", str(draft)]) == 0
     assert k.asked[0] == "stages.0.modality"
     plan = yaml.safe_load(out.read_text())
@@ -300,3 +301,24 @@ def test_a_second_interview_keeps_the_earlier_description(tmp_path):
     hand_edited = description.read_text()
     assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
     assert (tmp_path / "plan.pipeline.previous.yaml").read_text() == hand_edited
+
+
+def test_a_metric_that_no_longer_applies_can_be_kept_as_manual(tmp_path):
+    out = tmp_path / "plan.yaml"
+    assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
+    revise = tmp_path / "revise.yaml"
+    revise.write_text("""
+revise.0: add a stage
+revise.0.stage.id: chutes
+revise.0.stage.kind: rule-based
+revise.0.stage.modality: image
+revise.0.stage.output: records
+revise.0.stage.upstream: [router]
+revise.1: finish
+gaps.stale.pipeline.output.final_quality: false
+""")
+    assert main(["interview", str(out), "--answers", str(revise)]) == 0
+    plan = yaml.safe_load(out.read_text())
+    kept = next(m for m in plan["pipeline_metrics"] if m["id"] == "pipeline.output.final_quality")
+    assert kept["source"] == "manual" and kept["status"] == "accepted"
+    assert lint_file(str(out)) == []

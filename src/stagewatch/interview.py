@@ -341,12 +341,13 @@ def _th(value: Any) -> str:
 
 
 def review(s: Session, plan: dict[str, Any], stages: list[str]) -> None:
-    """Accept, reject (with a note) or edit the proposal, stage by stage and layer by layer."""
-    by_id = {st["id"]: st for st in plan["stages"]}
-    for stage_id in stages:
-        block = by_id[stage_id]
+    """Accept, reject (with a note) or edit the proposal, stage by stage and layer by layer, then the metrics of
+    the whole pipeline."""
+    by_id = {st["id"]: st["metrics"] for st in plan["stages"]}
+    blocks = [(stage_id, by_id[stage_id]) for stage_id in stages] + [("pipeline", plan.get("pipeline_metrics", []))]
+    for stage_id, block in blocks:
         for layer in LAYERS:
-            metrics = [m for m in block["metrics"] if m["layer"] == layer and m["status"] == "proposed"]
+            metrics = [m for m in block if m["layer"] == layer and m["status"] == "proposed"]
             if not metrics:
                 continue
             s.out(f"{stage_id}: {len(metrics)} proposed {layer} metrics")
@@ -470,6 +471,17 @@ def run(session: Session, output: str, existing_plan: str | None = None) -> list
                                 "They came from rules that no longer match your stages; nothing a person wrote "
                                 "is in them.", "confirm", default=True)):
             _drop(plan, set(undecided))
+    for m in [m for m in all_metrics(plan) if m["status"] == "stale" and m["id"] not in undecided]:
+        if session.ask(Question(f"gaps.stale.{m['id']}", f"{m['id']} no longer applies (it was "
+                                f"{m.get('previous_status', 'proposed')}). Remove it? (no: keep it as a manual metric)",
+                                "Its rule no longer matches the stage; a manual metric stays until you delete it.",
+                                "confirm", default=True)):
+            _drop(plan, {m["id"]})
+        else:
+            m["source"] = "manual"
+            m["status"] = m.pop("previous_status", "proposed")
+            m.pop("review", None)
+            m.pop("fingerprint", None)
     findings = lint_document(yamlio.Document(str(plan_path), plan, None))
     if findings:
         session.out("coverage gaps left:")
