@@ -212,23 +212,28 @@ def test_no_terminal_and_no_answers_names_the_ways_out(tmp_path, capsys):
     assert "--answers" in err and "propose" in err
 
 
+def _add_chutes(tmp_path, modality: str, extra: str = "") -> Path:
+    """Answers that reopen the plan, add a rule-based stage 'chutes' below 'router', and finish."""
+    path = tmp_path / "revise.yaml"
+    path.write_text(f"""
+revise.0: add a stage
+revise.0.stage.id: chutes
+revise.0.stage.kind: rule-based
+revise.0.stage.modality: {modality}
+revise.0.stage.output: records
+revise.0.stage.upstream: [router]
+revise.1: finish
+""" + extra)
+    return path
+
+
 def test_reopening_a_plan_adds_a_stage_and_keeps_decisions(tmp_path):
     out = tmp_path / "plan.yaml"
     assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
     data = yaml.safe_load(out.read_text())
     data["stages"][0]["metrics"][0]["note"] = "checked by the scanner vendor"
     out.write_text(yaml.safe_dump(data, sort_keys=False))
-    revise = tmp_path / "revise.yaml"
-    revise.write_text("""
-revise.0: add a stage
-revise.0.stage.id: chutes
-revise.0.stage.kind: rule-based
-revise.0.stage.modality: tabular
-revise.0.stage.output: records
-revise.0.stage.upstream: [router]
-revise.1: finish
-""")
-    assert main(["interview", str(out), "--answers", str(revise)]) == 0
+    assert main(["interview", str(out), "--answers", str(_add_chutes(tmp_path, "tabular"))]) == 0
     plan = yaml.safe_load(out.read_text())
     assert [s["id"] for s in plan["stages"]] == ["scanner", "router", "chutes"]
     assert plan["stages"][0]["metrics"][0]["note"] == "checked by the scanner vendor"
@@ -306,17 +311,7 @@ def test_a_second_interview_keeps_the_earlier_description(tmp_path):
 def test_a_metric_that_no_longer_applies_can_be_kept_as_manual(tmp_path):
     out = tmp_path / "plan.yaml"
     assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
-    revise = tmp_path / "revise.yaml"
-    revise.write_text("""
-revise.0: add a stage
-revise.0.stage.id: chutes
-revise.0.stage.kind: rule-based
-revise.0.stage.modality: image
-revise.0.stage.output: records
-revise.0.stage.upstream: [router]
-revise.1: finish
-gaps.stale.pipeline.output.final_quality: false
-""")
+    revise = _add_chutes(tmp_path, "image", "gaps.stale.pipeline.output.final_quality: false\n")
     assert main(["interview", str(out), "--answers", str(revise)]) == 0
     plan = yaml.safe_load(out.read_text())
     kept = next(m for m in plan["pipeline_metrics"] if m["id"] == "pipeline.output.final_quality")

@@ -5,7 +5,8 @@ from __future__ import annotations
 from pathlib import Path
 
 from stagewatch import yamlio
-from stagewatch.lint import lint_file
+from stagewatch.exporters import EXPORTERS
+from stagewatch.lint import lint_document
 from stagewatch.plan import load_plan
 from stagewatch.propose import propose
 from stagewatch.render import render
@@ -26,19 +27,14 @@ def run_demo(out_dir: str) -> list[str]:
     _, rep = propose(str(pipeline_path), str(plan_path))
     assert rep is not None  # written to a file, so there is a report
     lines.extend(rep.lines())
-    findings = lint_file(str(plan_path))
+    plan, doc = load_plan(str(plan_path))  # read back once, as every other command would read it
+    findings = lint_document(doc)
     lines.append(f"lint {plan_path}: " + ("clean" if not findings else f"{len(findings)} finding(s)"))
     lines.extend(f"  {f}" for f in findings)
-    plan, _ = load_plan(str(plan_path))
     for path in render(plan, out):
         lines.append(f"wrote {path}: the plan for review (Markdown with a Mermaid diagram)")
-    try:
-        from stagewatch.exporters import export
-    except ImportError:  # pragma: no cover
-        pass
-    else:
-        lines.extend(export(str(plan_path), "prometheus", str(out / "prometheus")))
-        lines.extend(export(str(plan_path), "checks", str(out / "checks.json")))
+    lines.extend(EXPORTERS["prometheus"](plan, str(out / "prometheus")))
+    lines.extend(EXPORTERS["checks"](plan, str(out / "checks.json")))
     lines.append("next: edit status and note in the plan, re-run `stagewatch propose "
                  f"{pipeline_path} -o {plan_path}` to merge, and `stagewatch explain {plan_path} METRIC_ID` for "
                  "any number you doubt")

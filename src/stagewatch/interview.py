@@ -524,10 +524,10 @@ def _drop(plan: dict[str, Any], ids: set[str]) -> None:
 
 def _merge_statuses(fresh: dict[str, Any], on_disk: dict[str, Any]) -> dict[str, Any]:
     """A plan already at the output path: its human decisions win over this interview's defaults."""
-    old = {m["id"]: m for m in all_metrics(on_disk)}
+    # A metric without a fingerprint on disk was edited by a person (plan.compose drops it on the first edit).
+    edited = {m["id"]: m for m in all_metrics(on_disk) if "fingerprint" not in m}
     for stage in fresh["stages"]:
-        stage["metrics"] = [old.get(m["id"], m) if "fingerprint" not in old.get(m["id"], {"fingerprint": 1})
-                            else m for m in stage["metrics"]]
+        stage["metrics"] = [edited.get(m["id"], m) for m in stage["metrics"]]
     return fresh
 
 

@@ -44,9 +44,7 @@ def lint_file(path: str) -> list[Finding]:
 def lint_document(doc: yamlio.Document) -> list[Finding]:
     schema_errors = sorted(validator("plan").iter_errors(doc.data), key=lambda e: list(map(str, e.absolute_path)))
     if schema_errors:
-        return [Finding(doc.path, doc.line_of(e.absolute_path), "schema",
-                        f"{'.'.join(map(str, e.absolute_path)) or 'top level'}: {_short(e)}")
-                for e in schema_errors]
+        return [Finding(doc.path, doc.line_of(e.absolute_path), "schema", _schema_message(e)) for e in schema_errors]
     try:
         pipeline_of(doc.data, doc)
     except StagewatchError as exc:
@@ -55,10 +53,9 @@ def lint_document(doc: yamlio.Document) -> list[Finding]:
     return list(_meaning(doc))
 
 
-def _short(error: jsonschema.ValidationError) -> str:
-    if error.validator == "enum":
-        return f"{error.instance!r} is not one of {', '.join(map(str, error.validator_value))}"
-    return error.message
+def _schema_message(error: jsonschema.ValidationError) -> str:
+    message, expected = yamlio.describe_error(error)
+    return message + (f" (expected: {expected})" if expected else "")
 
 
 def _located(doc: yamlio.Document) -> Iterator[tuple[tuple[Any, ...], dict[str, Any], str | None]]:

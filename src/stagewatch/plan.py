@@ -48,8 +48,11 @@ class _Context:
     pipeline: Pipeline
     graph: PipelineGraph
 
+    def __post_init__(self) -> None:
+        self.stages = {s.id: s for s in self.pipeline.stages}
+
     def traffic(self, owner: str, edge: tuple[str, str] | None, quality: bool) -> sizing.Traffic:
-        stages = {s.id: s for s in self.pipeline.stages}
+        stages = self.stages
         if owner == PIPELINE_OWNER:
             sources = [stages[s] for s in self.graph.sources]
             sinks = [stages[s] for s in self.graph.sinks]
@@ -128,23 +131,15 @@ def _apply_sizing(metric: dict[str, Any], traffic: sizing.Traffic, budget: sizin
         work["_label_delay"] = traffic.label_delay
     if not refresh and metric.get("window") == "auto":
         refresh = True  # a reviewer wrote "auto": size this metric again (thresholds included)
-    if not refresh:
-        # A reviewer's numbers stand; sizing only explains them.
-        result = sizing.size_metric({**work, "window": metric["window"]}, traffic, budget)
-        metric["sizing"] = result["sizing"]
-        if metric.get("critical") is not None and result["sizing"].get("noise_floor") is not None:
-            floor = result["sizing"]["noise_floor"]
-            metric["review"] = (f"the critical threshold {metric['critical']:g} is below the noise floor "
-                                f"{floor:g} at window {metric['window']}; expect false alarms"
-                                if metric["critical"] < floor else None)
-        return
     result = sizing.size_metric(work, traffic, budget)
+    metric["review"] = result["review"]
+    metric["sizing"] = result["sizing"]
+    if not refresh:
+        return  # a reviewer's numbers stand; sizing only explains them (and flags them for review)
     metric["window"] = result["window"]
     metric["reference"] = result.get("reference", metric["reference"])
     metric["warn"] = result["warn"]
     metric["critical"] = result["critical"]
-    metric["review"] = result["review"]
-    metric["sizing"] = result["sizing"]
 
 
 def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[str, Any] | None = None
@@ -157,10 +152,10 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
     fresh: dict[str, dict[str, Any]] = {}
     traffic_of: dict[str, sizing.Traffic] = {}
     for proposal in match(rules, pipeline, graph):
-        change_rate = context.traffic(proposal.owner, proposal.edge, False).change_rate
-        draft = _draft(proposal, change_rate)
+        traffic = context.traffic(proposal.owner, proposal.edge, bool(proposal.template.get("on_labels")))
+        draft = _draft(proposal, traffic.change_rate)  # labelled or not, the change rate is the stage's
         fresh[draft["id"]] = draft
-        traffic_of[draft["id"]] = context.traffic(proposal.owner, proposal.edge, _is_quality(draft))
+        traffic_of[draft["id"]] = traffic
     old = _existing_metrics(existing) if existing else {}
     merged: dict[str, dict[str, Any]] = {}
     kept: set[str] = set()
@@ -190,13 +185,13 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
                                 pipeline.false_tickets_per_week)
     for metric_id, metric in merged.items():
         owner = metric_id.split(".", 1)[0]
-        traffic = traffic_of.get(metric_id)
-        if traffic is None and (owner in stages or owner == PIPELINE_OWNER):
+        known: sizing.Traffic | None = traffic_of.get(metric_id)
+        if known is None and (owner in stages or owner == PIPELINE_OWNER):
             edge = metric.get("edge")
             edge_t = (edge["from"], edge["to"]) if edge and edge.get("from") in stages else None
-            traffic = context.traffic(owner, edge_t, _is_quality(metric))
-        if traffic is not None and metric.get("status") != "stale" and metric.get("window"):
-            _apply_sizing(metric, traffic, budget, refresh=metric_id not in kept)
+            known = context.traffic(owner, edge_t, _is_quality(metric))
+        if known is not None and metric.get("status") != "stale" and metric.get("window"):
+            _apply_sizing(metric, known, budget, refresh=metric_id not in kept)
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)
     return _assemble(pipeline, graph, merged, kept, existing)

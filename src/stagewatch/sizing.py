@@ -229,8 +229,6 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     fixed = metric.get("window", "auto") != "auto"
     if fixed:
         chosen = _trial(stat, metric, traffic, budget, durations.parse(metric["window"]))
-        if not chosen.sound:
-            review = "the window set in the plan holds too few samples for this threshold"
     else:
         trials = [_trial(stat, metric, traffic, budget, w) for w in LADDER if w >= target]
         sound = [t for t in trials if t.sound]
@@ -252,6 +250,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         review = "no traffic reaches this check (0 samples per window); it cannot be sized"
     elif fixed and critical is not None and chosen.floor > critical:
         # A window and threshold set by a person: explain, never change them.
+        review = (f"the critical threshold {critical:g} is below the noise floor {_sig(chosen.floor, 3):g} at "
+                  f"window {metric['window']}; expect false alarms")
         notes.append(f"kept the critical threshold {critical:g} as set, although it is below the noise floor "
                      f"{chosen.floor:.3g} at this window: expect false alarms")
     elif critical is not None and chosen.floor > critical:

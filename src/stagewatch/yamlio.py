@@ -100,7 +100,8 @@ def load(path: str | os.PathLike[str]) -> Document:
     return parse(text, str(p))
 
 
-def _describe(error: jsonschema.ValidationError) -> tuple[str, str | None]:
+def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
+    """A schema violation in words: (where and what, what was expected)."""
     where = ".".join(str(k) for k in error.absolute_path) or "top level"
     validator = error.validator
     if validator == "enum":
@@ -129,7 +130,7 @@ def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> No
     # Descend into oneOf/anyOf to the most specific reason.
     while best.context:
         best = jsonschema.exceptions.best_match(best.context)
-    message, expected = _describe(best)
+    message, expected = describe_error(best)
     where = list(best.absolute_path)
     if best.validator == "additionalProperties" and isinstance(best.instance, dict):
         extra = [k for k in best.instance if k not in (best.schema.get("properties") or {})]

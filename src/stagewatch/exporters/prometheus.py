@@ -17,7 +17,8 @@ import networkx as nx
 
 from stagewatch import durations, yamlio
 from stagewatch.exporters import live_metrics
-from stagewatch.exporters.signals import FAMILIES, CounterLevelSignal, Series, Signal, counter, signal_for
+from stagewatch.exporters.signals import (FAMILIES, CounterLevelSignal, Series, ShareSignal, Signal, counter,
+                                          signal_for)
 from stagewatch.plan import all_metrics
 
 PIPELINE_STAGE = "pipeline"
@@ -312,6 +313,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
         for metric in metrics:
             if metric["id"] not in live:
                 continue
+            sig = None
             if metric["statistic"] == "burn_rate":
                 _slo_alerts(metric, pipeline, stage_id, info, owner, group)
                 fams = [FAMILIES["latency"] if "latency" in metric["id"] else FAMILIES["requests"]]
@@ -334,9 +336,8 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
                     use["bucket_le"] = f"{(info.get('latency_slo_ms') or 0) / 1000:g}"
                 if metric.get("field"):
                     use["field"] = metric["field"]
-                if metric["statistic"] in ("proportion", "quantile") and fam.name == "stagewatch_reference_share":
-                    sig_any = signal_for(metric, pipeline, stage_id, info)
-                    use["reference_share"] = sig_any.baseline()  # type: ignore[union-attr]
+                if isinstance(sig, ShareSignal) and fam.name == "stagewatch_reference_share":
+                    use["reference_share"] = sig.baseline()
                 entry["uses"].append(use)
         groups.append(group)
     instrumentation = {"pipeline": pipeline, "families": sorted(families.values(), key=lambda f: f["name"]),
