@@ -150,6 +150,10 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("kind", choices=SCHEMA_KINDS)
     p.set_defaults(func=_schema)
 
+    from stagewatch.commands_data import add_parsers as add_data_commands
+
+    add_data_commands(sub)
+
     try:
         from stagewatch.interview import add_parser as add_interview
     except ImportError:  # pragma: no cover - interview not installed

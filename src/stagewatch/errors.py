@@ -4,9 +4,10 @@ from __future__ import annotations
 
 # Exit codes, documented in the README.
 EXIT_OK = 0
-EXIT_FINDINGS = 1  # lint findings, failed checks
+EXIT_FINDINGS = 1  # lint findings; warn, insufficient or not-measured data checks
 EXIT_USAGE = 2  # unreadable or invalid input, bad usage
 EXIT_INTERNAL = 3  # a bug in stagewatch
+EXIT_CRITICAL = 4  # a data check found a critical change
 EXIT_INTERRUPTED = 130
 
 

@@ -14,6 +14,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from stagewatch import durations, sizing, stats, yamlio
+from stagewatch.data import contract
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
@@ -27,13 +28,16 @@ STATUSES = ("proposed", "accepted", "rejected", "stale")
 # Fields a reviewer edits; the fingerprint covers exactly these.
 EDITABLE = ("status", "measure", "statistic", "params", "unit", "window", "reference", "warn", "critical",
             "direction", "severity", "catches", "why", "note")
-METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "statistic",
+METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "reads", "statistic",
                "params", "unit", "window", "reference", "warn", "critical", "direction", "severity", "catches",
                "why", "ml_test_score", "on_labels", "review", "note", "sizing", "fingerprint")
 
 
 def fingerprint(metric: dict[str, Any]) -> str:
-    payload = json.dumps({k: metric.get(k) for k in EDITABLE}, sort_keys=True, default=str)
+    fields = {k: metric.get(k) for k in EDITABLE}
+    if "reads" in metric:  # plans written before the log contract have no reads: their fingerprints still hold
+        fields["reads"] = metric["reads"]
+    payload = json.dumps(fields, sort_keys=True, default=str)
     return hashlib.sha256(payload.encode()).hexdigest()[:12]
 
 
@@ -154,6 +158,11 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
     for proposal in match(rules, pipeline, graph):
         traffic = context.traffic(proposal.owner, proposal.edge, bool(proposal.template.get("on_labels")))
         draft = _draft(proposal, traffic.change_rate)  # labelled or not, the change rate is the stage's
+        reads = contract.reads_for(proposal.template.get("reads"), owner=stages.get(proposal.owner),
+                                   pipeline=pipeline, sinks=graph.sinks, name=proposal.name,
+                                   field=proposal.field, edge=proposal.edge)
+        if reads:
+            draft["reads"] = reads
         fresh[draft["id"]] = draft
         traffic_of[draft["id"]] = traffic
     old = _existing_metrics(existing) if existing else {}
@@ -168,6 +177,8 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             if metric.get("status") == "stale":  # its rule applies again
                 metric["status"] = metric.pop("previous_status", "proposed")
             metric.pop("fingerprint", None)
+            if "reads" not in metric and "reads" in draft:  # written before the log contract existed
+                metric["reads"] = draft["reads"]
             merged[metric_id] = metric
             kept.add(metric_id)
     for metric_id, before in old.items():

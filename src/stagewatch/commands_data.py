@@ -1,0 +1,92 @@
+"""The data commands' argument parsers and handlers: calibrate and check. Thin: options to keyword arguments."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+
+def _calibrate(args: argparse.Namespace) -> int:
+    from stagewatch.data.baseline import calibrate, load_baseline
+    from stagewatch.data.sources import parse_data_args
+    from stagewatch.errors import EXIT_OK
+
+    lines = calibrate(args.plan, parse_data_args(args.data), args.output, time_column=args.time_column,
+                      start=args.start, end=args.end)
+    if args.format == "openmetrics":
+        from stagewatch.data.report import reference_openmetrics
+        from stagewatch.plan import load_plan
+
+        plan, _ = load_plan(args.plan)
+        sys.stdout.write(reference_openmetrics(load_baseline(args.output, plan), plan))
+        for line in lines:
+            print(line, file=sys.stderr)
+    else:
+        print("\n".join(lines))
+    return EXIT_OK
+
+
+def _check(args: argparse.Namespace) -> int:
+    from stagewatch import yamlio
+    from stagewatch.data import report
+    from stagewatch.data.check import exit_code, run_check
+    from stagewatch.data.sources import parse_data_args
+    from stagewatch.plan import load_plan
+
+    result = run_check(args.plan, args.baseline, parse_data_args(args.data), time_column=args.time_column,
+                       window=args.window, at=args.at)
+    text = None
+    if args.format == "json":
+        text = report.to_json(result)
+    elif args.format == "markdown":
+        text = report.to_markdown(result)
+    elif args.format == "openmetrics":
+        plan, _ = load_plan(args.plan)
+        text = report.to_openmetrics(result, plan.get("pipeline", ""))
+    if text is None:
+        if args.output:
+            yamlio.write_atomic(args.output, report.to_markdown(result))
+        report.print_table(result)
+    elif args.output:
+        yamlio.write_atomic(args.output, text)
+        print(f"wrote {args.output}: {report.summary_line(result)}", file=sys.stderr)
+    else:
+        sys.stdout.write(text)
+    return exit_code(result)
+
+
+def add_parsers(sub: Any) -> None:
+    p = sub.add_parser("calibrate", help="make a baseline from reference logs (edges, categories, shares, rates)",
+                       description="Read each stage's reference logs and write BASELINE_DIR/baseline.json: per "
+                       "check the reference bin edges and shares, category frequencies, missing and unknown "
+                       "shares, ranges, row counts and the item rate by hour of week. --format openmetrics also "
+                       "prints the reference gauges the Prometheus export reads.")
+    p.add_argument("plan", metavar="PLAN.yaml")
+    _data_options(p)
+    p.add_argument("--from", dest="start", metavar="T", help="start of the reference period (ISO 8601; UTC unless an offset is given)")
+    p.add_argument("--to", dest="end", metavar="T", help="end of the reference period")
+    p.add_argument("-o", "--output", metavar="BASELINE_DIR", required=True, help="directory to write baseline.json into")
+    p.add_argument("--format", choices=("text", "openmetrics"), default="text",
+                   help="openmetrics: print the reference gauges to standard output")
+    p.set_defaults(func=_calibrate)
+
+    p = sub.add_parser("check", help="run the plan's input and output checks on logs against a baseline",
+                       description="Compute every input and output check of the plan on the window ending at --at "
+                       "(default: the latest timestamp in the data), with each check's own window unless --window "
+                       "overrides it. Verdicts: ok, warn, critical, insufficient, not_measured. Exit 0 all ok, 1 a "
+                       "warn, insufficient or not-measured check, 4 a critical check, 2 bad input.")
+    p.add_argument("plan", metavar="PLAN.yaml")
+    p.add_argument("--baseline", required=True, metavar="BASELINE_DIR")
+    _data_options(p)
+    p.add_argument("--window", metavar="DURATION|all", help="one window for every check; all: the whole input")
+    p.add_argument("--at", metavar="T", help="end of the window (ISO 8601; default: the latest timestamp)")
+    p.add_argument("--format", choices=("table", "json", "markdown", "openmetrics"), default="table")
+    p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
+    p.set_defaults(func=_check)
+
+
+def _data_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--data", action="append", required=True, metavar="STAGE=PATH",
+                   help="a stage's log: a CSV, Parquet or JSON-lines file or a glob of them (repeat per stage)")
+    p.add_argument("--time-column", default="timestamp", metavar="NAME", help="the timestamp column (default: timestamp)")

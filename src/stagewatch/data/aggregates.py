@@ -1,0 +1,102 @@
+"""One definition of the aggregates every engine computes, as sqlglot expressions.
+
+A check needs counts: rows, rows that meet a condition, rows per bin of the reference's edges, rows per known
+category, sums for a mean. Each is an :class:`Aggregate` with a stable key; the scan runs them all in one
+``SELECT ... GROUP BY time bucket`` per stage. Bins are closed on the left: bin 0 holds values below the first
+edge, bin i holds edge[i-1] <= v < edge[i], the last bin holds values at or above the last edge. NULL, NaN and
+(for bins) infinite values fall in no bin. Column names and literals are quoted by sqlglot, never pasted.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, Sequence
+
+from sqlglot import exp
+
+DIALECT = "duckdb"
+
+
+@dataclass(frozen=True)
+class Aggregate:
+    key: str
+    expr: exp.Expression
+
+
+def col(name: str) -> exp.Column:
+    return exp.column(name, quoted=True)
+
+
+def lit(value: Any) -> exp.Expression:
+    if isinstance(value, bool):
+        return exp.true() if value else exp.false()
+    if isinstance(value, (int, float)):
+        return exp.Literal.number(repr(float(value)) if isinstance(value, float) else value)
+    return exp.Literal.string(str(value))
+
+
+def number(name: str, transform: str | None = None) -> exp.Expression:
+    """A column as a DOUBLE (NULL where it is not a number); ``length``: its text length."""
+    if transform == "length":
+        return exp.Length(this=exp.cast(col(name), "VARCHAR"))
+    return exp.TryCast(this=col(name), to=exp.DataType.build("DOUBLE"))
+
+
+def text(name: str) -> exp.Expression:
+    return exp.cast(col(name), "VARCHAR")
+
+
+def finite(value: exp.Expression) -> exp.Expression:
+    return exp.and_(value.is_(exp.null()).not_(),
+                    exp.func("isfinite", value.copy()))
+
+
+def count_if(condition: exp.Expression) -> exp.Expression:
+    return exp.func("sum", exp.Case(ifs=[exp.If(this=condition, true=exp.Literal.number(1))],
+                                    default=exp.Literal.number(0)))
+
+
+def rows() -> exp.Expression:
+    return exp.Count(this=exp.Star())
+
+
+def bin_conditions(value: exp.Expression, edges: Sequence[float]) -> list[exp.Expression]:
+    """One condition per bin of ``edges`` (len(edges) + 1 bins), finite values only."""
+    ok = finite(value)
+    out: list[exp.Expression] = []
+    bounds = [None, *edges, None]
+    for low, high in zip(bounds[:-1], bounds[1:]):
+        parts = [ok.copy()]
+        if low is not None:
+            parts.append(exp.GTE(this=value.copy(), expression=lit(float(low))))
+        if high is not None:
+            parts.append(exp.LT(this=value.copy(), expression=lit(float(high))))
+        out.append(exp.and_(*parts))
+    return out
+
+
+def category_conditions(value: exp.Expression, categories: Sequence[str]) -> list[exp.Expression]:
+    """One condition per known category, then one for any other non-null value."""
+    out: list[exp.Expression] = [exp.EQ(this=value.copy(), expression=lit(c)) for c in categories]
+    known = exp.In(this=value.copy(), expressions=[lit(c) for c in categories]) if categories else exp.false()
+    out.append(exp.and_(value.copy().is_(exp.null()).not_(), exp.not_(known)))
+    return out
+
+
+def select(view: str, aggregates: Sequence[Aggregate], *, bucket: exp.Expression | None = None,
+           where: exp.Expression | None = None) -> exp.Select:
+    """``SELECT [bucket,] agg AS a0, agg AS a1 ... FROM view [WHERE] [GROUP BY bucket]``."""
+    items: list[exp.Expression] = []
+    if bucket is not None:
+        items.append(exp.alias_(bucket, "bucket"))
+    items.extend(exp.alias_(a.expr, f"a{i}") for i, a in enumerate(aggregates))
+    query = exp.select(*items).from_(exp.to_table(view))
+    if where is not None:
+        query = query.where(where)
+    if bucket is not None:
+        query = query.group_by(exp.column("bucket"))
+    return query
+
+
+def sql(expression: exp.Expression, dialect: str = DIALECT) -> str:
+    return expression.sql(dialect=dialect)

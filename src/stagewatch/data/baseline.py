@@ -1,0 +1,205 @@
+"""``stagewatch calibrate``: a baseline from reference logs, and reading it back with its integrity checked.
+
+A baseline is one JSON file, ``baseline.json`` in its directory: per stage the sources (paths, rows, content
+hashes), the reference period, the item rate (by hour of week when the period spans a week), a summary per
+column read, and per check its reference (edges, categories, moments) with the reference's own counts. The body
+carries a SHA-256 of itself, so an edited or truncated file is refused rather than trusted.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import math
+import os
+from typing import Any
+
+from stagewatch import __version__, yamlio
+from stagewatch.data import contract, scan, sources
+from stagewatch.data.measures import MAX_CATEGORIES_SEEN, Measure
+from stagewatch.errors import StagewatchError
+
+FORMAT = 1
+FILE = "baseline.json"
+HOURS_PER_WEEK = 168
+# The epoch (1970-01-01) was a Thursday: add three days of hours so that hour 0 of the week is Monday 00:00 UTC.
+_MONDAY_OFFSET_H = 72
+
+
+def hour_of_week(epoch_hour: int) -> int:
+    return (epoch_hour + _MONDAY_OFFSET_H) % HOURS_PER_WEEK
+
+
+def _canonical(body: dict[str, Any]) -> str:
+    return json.dumps(body, sort_keys=True, separators=(",", ":"), allow_nan=False)
+
+
+def _clean(x: Any) -> Any:
+    """JSON has no NaN or infinity: store them as null."""
+    if isinstance(x, float) and not math.isfinite(x):
+        return None
+    if isinstance(x, dict):
+        return {k: _clean(v) for k, v in x.items()}
+    if isinstance(x, (list, tuple)):
+        return [_clean(v) for v in x]
+    return x
+
+
+def plan_identity(plan: dict[str, Any]) -> dict[str, Any]:
+    return {"pipeline": plan.get("pipeline"), "plan_version": plan.get("plan_version")}
+
+
+def _rates(hours: dict[int, int], first_h: int, last_h: int) -> dict[str, Any]:
+    span = last_h - first_h + 1
+    total = sum(hours.values())
+    out: dict[str, Any] = {"hours": span, "rows": total, "rate_per_hour": total / span if span else 0.0,
+                           "rate_by_hour_of_week": None}
+    if span >= HOURS_PER_WEEK:
+        sums = [0.0] * HOURS_PER_WEEK
+        seen = [0] * HOURS_PER_WEEK
+        for h in range(first_h, last_h + 1):
+            sums[hour_of_week(h)] += hours.get(h, 0)
+            seen[hour_of_week(h)] += 1
+        out["rate_by_hour_of_week"] = [round(s / c, 3) if c else None for s, c in zip(sums, seen)]
+    return out
+
+
+def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], start: float | None,
+                     end: float | None) -> dict[str, Any]:
+    first, last, rows_all, bad_ts = scan.time_range(con, source)
+    lo = start if start is not None else (first - 1 if first is not None else None)
+    hi = end if end is not None else last
+    hours = scan.hourly(con, source, lo, hi)
+    if not hours:
+        raise StagewatchError("no rows in the reference period", file=source.pattern,
+                              expected="logs whose timestamps fall between --from and --to")
+    first_h = int(math.floor(lo / 3600)) if start is not None else min(hours)
+    last_h = int(math.floor((hi - 1e-9) / 3600)) if end is not None else max(hours)
+    numeric_columns = {c for c in source.columns if source.is_numeric(c)}
+    measures: dict[str, Measure] = {}
+    missing: dict[str, list[str]] = {}
+    for metric in metrics:
+        measure = Measure(metric, numeric_columns)
+        absent = [c for c in measure.columns() if not source.has(c)]
+        if absent:
+            missing[metric["id"]] = absent
+        else:
+            measures[metric["id"]] = measure
+    numeric: dict[str, Any] = {}
+    categorical: list[str] = []
+    for m in measures.values():
+        if m.is_categorical():
+            categorical.append(m.column)  # type: ignore[arg-type]
+        elif m.probabilities() or m.statistic == "mean":
+            key = f"{m.column}|{m.reads.get('transform', '')}|{m.metric['id']}"
+            numeric[key] = (m.value_expr(), m.probabilities())
+    prof = scan.profile(con, source, numeric, sorted(set(categorical)), lo, hi, MAX_CATEGORIES_SEEN)
+    references: dict[str, dict[str, Any]] = {}
+    aggregates = []
+    for metric_id, m in measures.items():
+        if m.is_categorical():
+            p = {"categories": prof[f"categories:{m.column}"]}
+        elif m.probabilities() or m.statistic == "mean":
+            p = prof[f"{m.column}|{m.reads.get('transform', '')}|{metric_id}"]
+        else:
+            p = {}
+        ref = m.reference(p)
+        references[metric_id] = ref
+        aggregates += [a.__class__(f"{metric_id}#{a.key}", a.expr) for a in m.aggregates(ref)]
+    counts = scan.run(con, source, aggregates, start=lo, end=hi).get(-1, {})
+    checks: dict[str, Any] = {}
+    for metric_id, m in measures.items():
+        own = {k.split("#", 1)[1]: v for k, v in counts.items() if k.startswith(metric_id + "#")}
+        block = m.reference_from_counts(references[metric_id], own)
+        block["signature"] = contract.signature(m.metric)
+        checks[metric_id] = block
+    rates = _rates(hours, first_h, last_h)
+    summary = {}
+    for key, p in prof.items():
+        if key.startswith("categories:"):
+            summary[key.split(":", 1)[1]] = {"categories": [c for c, _ in p[:20]], "distinct": len(p)}
+        else:
+            column = key.split("|", 1)[0]
+            summary.setdefault(column, {"min": p["min"], "max": p["max"], "mean": p["mean"], "sd": p["sd"],
+                                        "values": p["n"]})
+    return {
+        "sources": [sources.file_digest(p) for p in source.paths],
+        "time_column": source.time_column,
+        "period": {"from": sources.format_time(first_h * 3600.0), "to": sources.format_time((last_h + 1) * 3600.0)},
+        "rows_unreadable_time": bad_ts,
+        **rates,
+        "columns": summary,
+        "checks": checks,
+        "not_calibrated": {k: f"the log has no column {', '.join(v)}" for k, v in missing.items()},
+    }
+
+
+def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column: str = contract.TIME_COLUMN,
+              start: str | None = None, end: str | None = None) -> list[str]:
+    """Write ``out_dir/baseline.json`` from the reference logs; returns the lines to print."""
+    from stagewatch.plan import load_plan
+
+    plan, _ = load_plan(plan_path)
+    by_stage = contract.checks_by_stage(plan)
+    known = {s["id"] for s in plan["stages"]}
+    for stage in data:
+        if stage not in known:
+            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path,
+                                  expected="one of " + ", ".join(sorted(known)))
+    lo, hi = sources.parse_time(start, "--from"), sources.parse_time(end, "--to")
+    if lo is not None and hi is not None and lo >= hi:
+        raise StagewatchError("--from is not before --to", expected="a reference period with --from < --to")
+    con = sources.connect()
+    stages: dict[str, Any] = {}
+    lines = []
+    for index, (stage, pattern) in enumerate(data.items()):
+        source = sources.open_source(con, stage, pattern, time_column, index)
+        block = _calibrate_stage(con, source, by_stage.get(stage, []), lo, hi)
+        stages[stage] = block
+        lines.append(f"{stage}: {block['rows']:,} rows over {block['hours']:,} hours, "
+                     f"{len(block['checks'])} check(s) calibrated"
+                     + (f", {len(block['not_calibrated'])} not (missing columns)" if block["not_calibrated"] else ""))
+    missing_stages = sorted(set(by_stage) - set(data))
+    body = _clean({
+        "format": FORMAT,
+        "tool": f"stagewatch {__version__}",
+        "plan": {**plan_identity(plan), "file": os.path.basename(plan_path)},
+        "period": {"from": start, "to": end},
+        "stages": stages,
+    })
+    text = json.dumps({"sha256": hashlib.sha256(_canonical(body).encode()).hexdigest(), "baseline": body},
+                      indent=1, sort_keys=True, allow_nan=False) + "\n"
+    path = os.path.join(out_dir, FILE)
+    yamlio.write_atomic(path, text)
+    lines.append(f"wrote {path}")
+    if missing_stages:
+        lines.append("no --data for " + ", ".join(missing_stages) + ": their checks have no baseline")
+    return lines
+
+
+def load_baseline(directory: str, plan: dict[str, Any]) -> dict[str, Any]:
+    """The baseline body, after checking its hash and that it was made for this plan's pipeline."""
+    path = os.path.join(directory, FILE) if os.path.isdir(directory) else directory
+    try:
+        with open(path, encoding="utf-8") as handle:
+            raw = json.load(handle)
+    except FileNotFoundError:
+        raise StagewatchError("no baseline here", file=path, expected="a directory written by `stagewatch calibrate`") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise StagewatchError(f"the baseline is not valid JSON (truncated or edited?): {exc}", file=path,
+                              expected="a baseline written by `stagewatch calibrate`; re-run it") from None
+    if not isinstance(raw, dict) or "baseline" not in raw or "sha256" not in raw:
+        raise StagewatchError("this is not a stagewatch baseline", file=path,
+                              expected="a baseline written by `stagewatch calibrate`")
+    body = raw["baseline"]
+    if hashlib.sha256(_canonical(body).encode()).hexdigest() != raw["sha256"]:
+        raise StagewatchError("the baseline's content does not match its hash: it was edited or damaged", file=path,
+                              expected="an unedited baseline; re-run `stagewatch calibrate`")
+    if body.get("format") != FORMAT:
+        raise StagewatchError(f"baseline format {body.get('format')} is not {FORMAT}", file=path,
+                              expected="a baseline from this version; re-run `stagewatch calibrate`")
+    made_for = body.get("plan", {}).get("pipeline")
+    if made_for != plan.get("pipeline"):
+        raise StagewatchError(f"this baseline was made for pipeline '{made_for}', not '{plan.get('pipeline')}'",
+                              file=path, expected="a baseline calibrated on this plan")
+    return body

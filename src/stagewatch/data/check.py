@@ -1,0 +1,249 @@
+"""``stagewatch check``: every input and output check of a plan on the window ending at ``--at``.
+
+Verdicts: ``ok``, ``warn``, ``critical``, ``insufficient`` (fewer samples than the statistic needs; never an all
+clear), ``not_measured`` (a column the check reads is absent, or the baseline has no reference for it).
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from functools import reduce
+from typing import Any
+
+from stagewatch import durations, stats
+from stagewatch.data import contract, scan, sources
+from stagewatch.data.baseline import hour_of_week, load_baseline
+from stagewatch.data.measures import Measure
+from stagewatch.errors import StagewatchError
+
+VERDICTS = ("ok", "warn", "critical", "insufficient", "not_measured")
+UNSEEN_LIMIT = 10
+
+
+@dataclass
+class CheckRow:
+    id: str
+    stage: str
+    layer: str
+    statistic: str
+    window: str
+    verdict: str
+    value: float | None = None
+    warn: float | None = None
+    critical: float | None = None
+    direction: str = "above"
+    n: int | None = None
+    m: int | None = None
+    words: str = ""
+    severity: str = "ticket"
+    columns: list[str] = field(default_factory=list)
+    edge: dict[str, str] | None = None
+    detail: dict[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        out = {k: getattr(self, k) for k in ("id", "stage", "layer", "statistic", "window", "verdict", "value",
+                                            "warn", "critical", "direction", "n", "m", "severity", "words",
+                                            "columns")}
+        if self.edge:
+            out["edge"] = self.edge
+        if self.detail:
+            out["detail"] = self.detail
+        return out
+
+
+@dataclass
+class CheckResult:
+    at: float | None
+    rows: list[CheckRow]
+    service_checks: int
+    stages_without_data: list[str]
+    attribution: list[dict[str, Any]] = field(default_factory=list)
+
+    def counts(self) -> dict[str, int]:
+        return {v: sum(1 for r in self.rows if r.verdict == v) for v in VERDICTS}
+
+
+def verdict(value: float | None, direction: str, warn: float | None, critical: float | None) -> str:
+    """``ok``, ``warn`` or ``critical`` for a value; thresholds are sizes of change in the metric's direction."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "insufficient"
+    score = value if direction == "above" else -value if direction == "below" else abs(value)
+    if critical is not None and score >= critical:
+        return "critical"
+    if warn is not None and score >= warn:
+        return "warn"
+    return "ok"
+
+
+def level_verdict(value: float, warn: float | None, critical: float | None) -> str:
+    """A fixed limit on a level: fires when the level reaches the limit (a limit of 0 fires on any)."""
+    if critical is not None and value >= max(critical, 1e-12):
+        return "critical"
+    if warn is not None and value >= max(warn, 1e-12):
+        return "warn"
+    return "ok"
+
+
+def min_samples(metric: dict[str, Any]) -> int:
+    if metric["statistic"] == "level":
+        return 1
+    return int(stats.make(metric["statistic"], **(metric.get("params") or {})).min_samples())
+
+
+def expected_rows(stage_ref: dict[str, Any], start: float, end: float) -> float | None:
+    """Rows the reference rate expects in ``(start, end]``: by hour of week when known, else the flat rate."""
+    by_how = stage_ref.get("rate_by_hour_of_week")
+    flat = stage_ref.get("rate_per_hour")
+    if not by_how:
+        return None if flat is None else flat * (end - start) / 3600.0
+    total = 0.0
+    t = start
+    while t < end:
+        hour = math.floor(t / 3600.0)
+        upto = min(end, (hour + 1) * 3600.0)
+        rate = by_how[hour_of_week(hour)]
+        total += (rate if rate is not None else flat) * (upto - t) / 3600.0
+        t = upto
+    return total
+
+
+def _window_seconds(metric: dict[str, Any], override: str | None) -> int | None:
+    if override == "all":
+        return None
+    text = override or metric.get("window")
+    try:
+        return durations.parse(str(text))
+    except ValueError:
+        raise StagewatchError(f"window {text!r} of {metric['id']} is not a duration",
+                              expected="a duration such as 15m, 6h or 1d, or --window all") from None
+
+
+def _row(metric: dict[str, Any], stage: str, window: str, verdict_: str, **kw: Any) -> CheckRow:
+    return CheckRow(id=metric["id"], stage=stage, layer=metric["layer"], statistic=metric["statistic"],
+                    window=window, verdict=verdict_, warn=metric.get("warn"), critical=metric.get("critical"),
+                    direction=metric.get("direction", "above"), severity=metric.get("severity", "ticket"),
+                    columns=contract.columns_of(metric["reads"]), edge=metric.get("edge"), **kw)
+
+
+def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
+                 at: float, window_override: str | None) -> list[CheckRow]:
+    numeric_columns = {c for c in source.columns if source.is_numeric(c)}
+    rows: list[CheckRow] = []
+    runnable: list[tuple[dict[str, Any], Measure, dict[str, Any], int | None]] = []
+    for metric in metrics:
+        seconds = _window_seconds(metric, window_override)
+        window = "all" if seconds is None else durations.format(seconds)
+        measure = Measure(metric, numeric_columns)
+        absent = [c for c in measure.columns() if not source.has(c)]
+        ref = stage_ref.get("checks", {}).get(metric["id"])
+        if absent:
+            rows.append(_row(metric, source.stage, window, "not_measured",
+                             words=f"the log has no column {', '.join(absent)}"))
+        elif ref is None:
+            rows.append(_row(metric, source.stage, window, "not_measured",
+                             words=stage_ref.get("not_calibrated", {}).get(metric["id"])
+                             or "the baseline has no reference for this check; re-run calibrate"))
+        elif ref.get("signature") != contract.signature(metric):
+            rows.append(_row(metric, source.stage, window, "not_measured",
+                             words="the check changed since the baseline was made; re-run calibrate"))
+        else:
+            runnable.append((metric, measure, ref, seconds))
+    if not runnable:
+        return rows
+    aggregates = []
+    for metric, measure, ref, _ in runnable:
+        aggregates += [a.__class__(f"{metric['id']}#{a.key}", a.expr) for a in measure.aggregates(ref)]
+    timed = [s for *_, s in runnable if s is not None]
+    if len(timed) == len(runnable):
+        step = float(reduce(math.gcd, timed))
+        buckets = scan.run(con, source, aggregates, start=at - max(timed), end=at, step=step)
+    else:
+        step = 0.0
+        buckets = scan.run(con, source, aggregates)
+    first_ts, last_ts, *_ = scan.time_range(con, source)
+    for metric, measure, ref, seconds in runnable:
+        keys = [a.key for a in measure.aggregates(ref)]
+        prefixed = [f"{metric['id']}#{k}" for k in keys]
+        if seconds is None:
+            summed = scan.total(buckets, -1, -1, prefixed)
+            start, end = (first_ts or at) - 1e-9, last_ts or at
+        else:
+            summed = scan.total(buckets, 0, int(round(seconds / step)) - 1, prefixed)
+            start, end = at - seconds, at
+        counts = {k.split("#", 1)[1]: v for k, v in summed.items()}
+        expected = expected_rows(stage_ref, start, end) if metric["statistic"] == "count" else None
+        result = measure.evaluate(ref, counts, expected)
+        window = "all" if seconds is None else durations.format(seconds)
+        if metric["statistic"] == "level":
+            v = level_verdict(result.value or 0.0, metric.get("warn"), metric.get("critical"))
+        elif result.value is None or (result.n or 0) < min_samples(metric):
+            v = "insufficient"
+        else:
+            v = verdict(result.value, metric.get("direction", "above"), metric.get("warn"), metric.get("critical"))
+        words = result.words
+        if v == "insufficient" and result.value is not None:
+            words = f"{result.n:,} samples, {min_samples(metric):,} needed; " + words
+        row = _row(metric, source.stage, window, v, value=result.value, n=result.n, m=result.m, words=words,
+                   detail=result.detail)
+        if measure.condition == "unseen" and result.detail.get("matches"):
+            row.detail["unseen_values"] = scan.values_not_in(con, source, measure.column or "",
+                                                             ref.get("categories_seen", []), start, end, UNSEEN_LIMIT)
+        rows.append(row)
+    order = {m["id"]: i for i, m in enumerate(metrics)}
+    return sorted(rows, key=lambda r: order[r.id])
+
+
+def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_column: str = contract.TIME_COLUMN,
+              window: str | None = None, at: str | None = None) -> CheckResult:
+    from stagewatch.data.attribution import attribute
+    from stagewatch.plan import load_plan
+
+    plan, _ = load_plan(plan_path)
+    base = load_baseline(baseline_dir, plan)
+    if window not in (None, "all") and not durations.is_duration(window):
+        raise StagewatchError(f"--window {window!r} is not a duration", expected="e.g. 1h, 1d or all")
+    by_stage = contract.checks_by_stage(plan)
+    known = {s["id"] for s in plan["stages"]}
+    for stage in data:
+        if stage not in known:
+            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path,
+                                  expected="one of " + ", ".join(sorted(known)))
+    con = sources.connect()
+    opened = [sources.open_source(con, stage, pattern, time_column, i) for i, (stage, pattern) in enumerate(data.items())]
+    moment = sources.parse_time(at, "--at")
+    if moment is None:
+        lasts = [scan.time_range(con, s)[1] for s in opened]
+        lasts = [t for t in lasts if t is not None]
+        moment = max(lasts) if lasts else None
+    rows: list[CheckRow] = []
+    for source in opened:
+        stage_ref = base["stages"].get(source.stage)
+        metrics = by_stage.get(source.stage, [])
+        if stage_ref is None:
+            rows += [_row(m, source.stage, m.get("window", ""), "not_measured",
+                          words="the baseline has no data for this stage; calibrate with --data for it")
+                     for m in metrics]
+            continue
+        if moment is None:
+            rows += [_row(m, source.stage, m.get("window", ""), "insufficient", n=0,
+                          words="the log has no rows with a readable timestamp") for m in metrics]
+            continue
+        rows += _check_stage(con, source, metrics, stage_ref, moment, window)
+    service = sum(1 for s in plan["stages"] for m in s.get("metrics", [])
+                  if contract.live(m) and m.get("layer") in ("input", "output") and not contract.in_log(m))
+    result = CheckResult(at=moment, rows=rows, service_checks=service,
+                         stages_without_data=sorted(set(by_stage) - set(data)))
+    result.attribution = attribute(plan, rows)
+    return result
+
+
+def exit_code(result: CheckResult) -> int:
+    from stagewatch.errors import EXIT_CRITICAL, EXIT_FINDINGS, EXIT_OK
+
+    counts = result.counts()
+    if counts["critical"]:
+        return EXIT_CRITICAL
+    if counts["warn"] or counts["insufficient"] or counts["not_measured"]:
+        return EXIT_FINDINGS
+    return EXIT_OK

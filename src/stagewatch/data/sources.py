@@ -1,0 +1,152 @@
+"""Where a stage's log comes from: ``--data STAGE=PATH`` (a CSV, Parquet or JSON-lines file, or a glob of them),
+opened in DuckDB as one view with a UTC timestamp column added.
+
+Timestamps: TIMESTAMP WITH TIME ZONE values are converted to UTC; timestamps without a zone, and text without an
+offset, are read as UTC. Numbers are refused (no silent guess between seconds and milliseconds).
+"""
+
+from __future__ import annotations
+
+import glob
+import hashlib
+import os
+from dataclasses import dataclass, field
+from typing import Any
+
+from stagewatch.errors import StagewatchError
+
+TS = "__stagewatch_ts"  # the UTC timestamp column added to every view (seconds since the epoch, DOUBLE)
+READERS = {".parquet": "parquet", ".pq": "parquet", ".csv": "csv", ".tsv": "csv", ".jsonl": "json",
+           ".ndjson": "json", ".json": "json"}
+_TIME_TYPES = ("TIMESTAMP", "DATE", "TIMESTAMP WITH TIME ZONE", "TIMESTAMP_NS", "TIMESTAMP_MS", "TIMESTAMP_S",
+               "VARCHAR")
+
+
+@dataclass
+class Source:
+    stage: str
+    pattern: str
+    paths: list[str]
+    view: str
+    columns: dict[str, str]  # column -> DuckDB type
+    time_column: str
+    files: list[dict[str, Any]] = field(default_factory=list)  # path, bytes, sha256
+
+    def has(self, column: str) -> bool:
+        return column in self.columns
+
+    def is_numeric(self, column: str) -> bool:
+        kind = self.columns.get(column, "")
+        return any(t in kind for t in ("INT", "DOUBLE", "FLOAT", "DECIMAL", "REAL", "NUMERIC"))
+
+
+def parse_data_args(items: list[str] | None, option: str = "--data") -> dict[str, str]:
+    """``STAGE=PATH`` pairs into a dict, with a usage error naming the item that is malformed or repeated."""
+    out: dict[str, str] = {}
+    for item in items or []:
+        stage, sep, path = item.partition("=")
+        if not sep or not stage or not path:
+            raise StagewatchError(f"{option} {item!r} is not STAGE=PATH", expected=f"{option} stage_id=logs.parquet")
+        if stage in out:
+            raise StagewatchError(f"{option} names stage '{stage}' twice", expected="one path or glob per stage")
+        out[stage] = path
+    return out
+
+
+def expand(pattern: str) -> list[str]:
+    paths = sorted(p for p in glob.glob(pattern) if os.path.isfile(p)) if glob.has_magic(pattern) else [pattern]
+    if not paths:
+        raise StagewatchError("no file matches this pattern", file=pattern, expected="a CSV, Parquet or JSON-lines file or a glob of them")
+    kinds = set()
+    for path in paths:
+        if not os.path.isfile(path):
+            raise StagewatchError("no such file", file=path, expected="a CSV, Parquet or JSON-lines file")
+        kind = READERS.get(os.path.splitext(path)[1].lower())
+        if kind is None:
+            raise StagewatchError("unknown file type", file=path,
+                                  expected="a file ending in .parquet, .csv, .tsv, .jsonl, .ndjson or .json")
+        kinds.add(kind)
+    if len(kinds) > 1:
+        raise StagewatchError(f"the files of one stage mix formats ({', '.join(sorted(kinds))})", file=pattern,
+                              expected="one format per stage")
+    return paths
+
+
+def file_digest(path: str) -> dict[str, Any]:
+    sha = hashlib.sha256()
+    with open(path, "rb") as handle:
+        for block in iter(lambda: handle.read(1 << 20), b""):
+            sha.update(block)
+    return {"path": path, "bytes": os.path.getsize(path), "sha256": sha.hexdigest()}
+
+
+def open_source(con: Any, stage: str, pattern: str, time_column: str, index: int) -> Source:
+    """Open a stage's files as a DuckDB view ``log_<index>`` with :data:`TS` added."""
+    import duckdb
+
+    paths = expand(pattern)
+    kind = READERS[os.path.splitext(paths[0])[1].lower()]
+    try:
+        if kind == "parquet":
+            rel = con.read_parquet(paths, union_by_name=True)
+        elif kind == "csv":
+            rel = con.read_csv(paths, union_by_name=True)
+        else:
+            rel = con.read_json(paths, format="newline_delimited")
+    except duckdb.Error as exc:
+        raise StagewatchError(f"cannot read this file: {str(exc).splitlines()[0]}", file=paths[0],
+                              expected=f"a readable {kind} file") from None
+    columns = {name: str(kind_) for name, kind_ in zip(rel.columns, rel.types)}
+    if time_column not in columns:
+        raise StagewatchError(f"no column '{time_column}' (the log has: {', '.join(list(columns)[:12])})",
+                              file=pattern, expected="a timestamp column; name it with --time-column")
+    ts_type = columns[time_column]
+    if ts_type not in _TIME_TYPES:
+        raise StagewatchError(f"column '{time_column}' holds {ts_type}, not timestamps", file=pattern,
+                              expected="ISO 8601 timestamps (with or without an offset; without one, UTC)")
+    raw = f"log_{index}_raw"
+    rel.create_view(raw)
+    from sqlglot import exp
+
+    from stagewatch.data import aggregates as ag
+
+    target = exp.DataType.build("TIMESTAMPTZ")
+    stamp = (exp.TryCast(this=ag.col(time_column), to=target) if ts_type == "VARCHAR"
+             else exp.cast(ag.col(time_column), target))
+    view = f"log_{index}"
+    query = exp.select(exp.Star(), exp.alias_(exp.func("epoch", stamp), TS)).from_(exp.to_table(raw))
+    con.execute(f"CREATE OR REPLACE VIEW {view} AS {ag.sql(query)}")  # view names are ours, never user text
+    return Source(stage=stage, pattern=pattern, paths=paths, view=view, columns=columns, time_column=time_column)
+
+
+def parse_time(text: str | None, option: str) -> float | None:
+    """An ISO 8601 time (``2026-03-01``, ``2026-03-01T06:00``, with or without an offset; without one, UTC) as
+    seconds since the epoch."""
+    if text is None:
+        return None
+    from datetime import datetime, timezone
+
+    try:
+        moment = datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
+    except ValueError:
+        raise StagewatchError(f"{option} {text!r} is not a time", expected="ISO 8601, e.g. 2026-03-01T06:00 "
+                              "(UTC unless an offset is given)") from None
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=timezone.utc)
+    return moment.timestamp()
+
+
+def format_time(seconds: float | None) -> str | None:
+    from datetime import datetime, timezone
+
+    if seconds is None:
+        return None
+    return datetime.fromtimestamp(seconds, tz=timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+
+
+def connect() -> Any:
+    import duckdb
+
+    con = duckdb.connect(":memory:")
+    con.execute("SET TimeZone = 'UTC'")
+    return con
