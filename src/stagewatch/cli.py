@@ -80,8 +80,13 @@ def _schema(args: argparse.Namespace) -> int:
 def _demo(args: argparse.Namespace) -> int:
     from stagewatch.demo import run_demo
 
-    for line in run_demo(args.output):
+    from stagewatch.data.report import print_table
+
+    lines, result = run_demo(args.output)
+    for line in lines:
         print(line)
+    print()
+    print_table(result, only_alerts=True)
     return EXIT_OK
 
 

@@ -182,3 +182,47 @@ def signature(metric: dict[str, Any]) -> str:
 
     payload = {k: metric.get(k) for k in ("reads", "statistic", "params")}
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()[:16]
+
+
+def _kind_of(metric: dict[str, Any], column: str) -> str:
+    reads = metric["reads"]
+    condition = reads.get("condition")
+    if column == reads.get("other_column"):
+        return "label (empty until it arrives)"
+    if condition == "set":
+        return "flag (true/false)"
+    if reads.get("transform") == "length":
+        return "text"
+    if metric["statistic"] == "chi_square" or condition in ("unknown", "unseen"):
+        return "category"
+    if metric["statistic"] in ("psi", "ks", "mean", "quantile") or condition in ("out_of_range", "nonfinite"):
+        return "number"
+    return "any (checked for presence and range)"
+
+
+def log_columns_markdown(plan: dict[str, Any]) -> str:
+    """The "log columns" section of instrumentation.md: per stage, the columns its log carries for `check`."""
+    def cell(text: str) -> str:
+        return "`" + str(text).replace("`", "'").replace("|", "\\|").replace("\n", " ") + "`"
+
+    lines = ["", "## Log columns", "",
+             f"`stagewatch calibrate` and `stagewatch check` read one log per stage: a table with one row per item, "
+             f"a `{TIME_COLUMN}` column (ISO 8601; UTC unless it carries an offset; `--time-column` names another) "
+             "and the columns below, named as declared. CSV, Parquet or JSON lines; a glob may name many files.", ""]
+    by_stage = checks_by_stage(plan)
+    for stage, metrics in by_stage.items():
+        uses: dict[str, list[str]] = {}
+        kinds: dict[str, str] = {}
+        for metric in metrics:
+            for column in columns_of(metric["reads"]):
+                uses.setdefault(column, []).append(metric["id"])
+                kinds.setdefault(column, _kind_of(metric, column))
+        lines += [f"### {cell(stage)}", "", "| column | holds | read by |", "|---|---|---|"]
+        lines.append(f"| {cell(TIME_COLUMN)} | when the item passed the stage | every check |")
+        for column, ids in uses.items():
+            lines.append(f"| {cell(column)} | {kinds[column]} | {', '.join(cell(i) for i in ids)} |")
+        rows_only = [m["id"] for m in metrics if not columns_of(m["reads"])]
+        if rows_only:
+            lines.append(f"| (rows) | one row per item | {', '.join(cell(i) for i in rows_only)} |")
+        lines.append("")
+    return "\n".join(lines) + "\n"

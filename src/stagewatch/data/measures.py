@@ -221,9 +221,8 @@ class Measure:
             return Evaluation(None, 0, ref.get("n"), "no rows the share applies to", {})
         share = matches / n
         ref_share = ref["share"]
-        what = self.metric.get("measure", "share")
         return Evaluation(share - ref_share, n, ref.get("n"),
-                          f"{_pct(share)} against {_pct(ref_share)} in the reference ({what})",
+                          f"share {_pct(share)} against {_pct(ref_share)} in the reference",
                           {"share": share, "reference_share": ref_share, "matches": matches})
 
     def reference_from_counts(self, ref: dict[str, Any], counts: dict[str, float]) -> dict[str, Any]:

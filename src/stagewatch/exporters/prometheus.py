@@ -16,6 +16,7 @@ from typing import Any
 import networkx as nx
 
 from stagewatch import durations, yamlio
+from stagewatch.data import contract
 from stagewatch.exporters import live_metrics
 from stagewatch.exporters.signals import (FAMILIES, CounterLevelSignal, Series, ShareSignal, Signal, counter,
                                           signal_for)
@@ -454,7 +455,8 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
                 "tests": by_step[interval]})
     files[out / "alertmanager.yml"] = AM_HEADER + yamlio.dump(built.alertmanager)
     files[out / "instrumentation.json"] = json.dumps(built.instrumentation, indent=2) + "\n"
-    files[out / "instrumentation.md"] = instrumentation_markdown(built.instrumentation)
+    files[out / "instrumentation.md"] = (instrumentation_markdown(built.instrumentation)
+                                         + contract.log_columns_markdown(plan))
     example = Path(__file__).with_name("example_exporter.py")
     files[out / "example_exporter.py"] = example.read_text(encoding="utf-8")
     for path, text in files.items():
