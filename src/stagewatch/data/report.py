@@ -103,18 +103,28 @@ def _footer(result: CheckResult) -> str:
 
 def print_table(result: CheckResult, console: Any = None, only_alerts: bool = False) -> None:
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = console or Console(highlight=False)
     table = Table(title=summary_line(result), title_justify="left", show_lines=False)
-    for name, justify in (("check", "left"), ("verdict", "left"), ("value", "right"),
-                          ("warn / crit", "right"), ("n", "right"), ("what moved", "left")):
-        table.add_column(name, justify=justify, overflow="fold")  # type: ignore[arg-type]
+    table.add_column("stage / check", no_wrap=True)
+    table.add_column("verdict", no_wrap=True)
+    table.add_column("value", justify="right", no_wrap=True)
+    table.add_column("warn / crit", justify="right", no_wrap=True)
+    table.add_column("n", justify="right", no_wrap=True)
+    table.add_column("what moved", overflow="fold", ratio=1)
+    stage = None
     for r in result.rows:
         if only_alerts and r.verdict == "ok":
             continue
-        table.add_row(r.id, f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", fmt(r.value), _threshold(r.warn, r.critical),
-                      "" if r.n is None else f"{r.n:,}", r.words if r.verdict != "ok" else "", )
+        if r.stage != stage:
+            stage = r.stage
+            table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", "")
+        name = r.id.split(".", 1)[1] if r.id.startswith(r.stage + ".") else r.id
+        table.add_row(f"  {escape(name)}", f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", fmt(r.value),
+                      _threshold(r.warn, r.critical), "" if r.n is None else f"{r.n:,}",
+                      escape(r.words) if r.verdict != "ok" else "")
     console.print(table, markup=True)
     for line in attribution_lines(result):
         console.print(line, markup=False)
