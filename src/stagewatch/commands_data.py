@@ -3,8 +3,28 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import sys
-from typing import Any
+from typing import Any, Callable, Iterator
+
+
+@contextlib.contextmanager
+def _progress(total: int) -> Iterator[Callable[[str], None] | None]:
+    """A transient progress display on a terminal (none when stderr is not one, as in CI or a pipe)."""
+    if not sys.stderr.isatty():
+        yield None
+        return
+    from rich.console import Console
+    from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
+
+    with Progress(SpinnerColumn(), TextColumn("scanning {task.description}"), TimeElapsedColumn(),
+                  console=Console(stderr=True), transient=True) as bar:
+        task = bar.add_task("", total=total)
+
+        def step(stage: str) -> None:
+            bar.update(task, description=stage, advance=1)
+
+        yield step
 
 
 def _calibrate(args: argparse.Namespace) -> int:
@@ -12,8 +32,10 @@ def _calibrate(args: argparse.Namespace) -> int:
     from stagewatch.data.sources import parse_data_args
     from stagewatch.errors import EXIT_OK
 
-    lines = calibrate(args.plan, parse_data_args(args.data), args.output, time_column=args.time_column,
-                      start=args.start, end=args.end)
+    data = parse_data_args(args.data)
+    with _progress(len(data)) as step:
+        lines = calibrate(args.plan, data, args.output, time_column=args.time_column, start=args.start,
+                          end=args.end, progress=step)
     if args.format == "openmetrics":
         from stagewatch.data.report import reference_openmetrics
         from stagewatch.plan import load_plan
@@ -34,8 +56,10 @@ def _check(args: argparse.Namespace) -> int:
     from stagewatch.data.sources import parse_data_args
     from stagewatch.plan import load_plan
 
-    result = run_check(args.plan, args.baseline, parse_data_args(args.data), time_column=args.time_column,
-                       window=args.window, at=args.at)
+    data = parse_data_args(args.data)
+    with _progress(len(data)) as step:
+        result = run_check(args.plan, args.baseline, data, time_column=args.time_column, window=args.window,
+                           at=args.at, progress=step)
     text = None
     if args.format == "json":
         text = report.to_json(result)

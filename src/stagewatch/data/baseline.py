@@ -12,7 +12,7 @@ import hashlib
 import json
 import math
 import os
-from typing import Any
+from typing import Any, Callable
 
 from stagewatch import __version__, yamlio
 from stagewatch.data import contract, scan, sources
@@ -135,7 +135,8 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
 
 
 def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column: str = contract.TIME_COLUMN,
-              start: str | None = None, end: str | None = None) -> list[str]:
+              start: str | None = None, end: str | None = None,
+              progress: Callable[[str], None] | None = None) -> list[str]:
     """Write ``out_dir/baseline.json`` from the reference logs; returns the lines to print."""
     from stagewatch.plan import load_plan
 
@@ -153,6 +154,8 @@ def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column
     stages: dict[str, Any] = {}
     lines = []
     for index, (stage, pattern) in enumerate(data.items()):
+        if progress:
+            progress(stage)
         source = sources.open_source(con, stage, pattern, time_column, index)
         block = _calibrate_stage(con, source, by_stage.get(stage, []), lo, hi)
         stages[stage] = block

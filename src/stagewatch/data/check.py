@@ -9,7 +9,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass, field
 from functools import reduce
-from typing import Any
+from typing import Any, Callable
 
 from stagewatch import durations, stats
 from stagewatch.data import contract, scan, sources
@@ -195,7 +195,8 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
 
 
 def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_column: str = contract.TIME_COLUMN,
-              window: str | None = None, at: str | None = None) -> CheckResult:
+              window: str | None = None, at: str | None = None,
+              progress: Callable[[str], None] | None = None) -> CheckResult:
     from stagewatch.data.attribution import attribute
     from stagewatch.plan import load_plan
 
@@ -218,6 +219,8 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
         moment = max(lasts) if lasts else None
     rows: list[CheckRow] = []
     for source in opened:
+        if progress:
+            progress(source.stage)
         stage_ref = base["stages"].get(source.stage)
         metrics = by_stage.get(source.stage, [])
         if stage_ref is None:
