@@ -186,7 +186,7 @@ def test_a_log_without_a_column_the_plan_reads_is_not_measured_by_name(tmp_path,
 
 @pytest.mark.parametrize("stamp,expected", [
     ("1772409600", "holds BIGINT"),          # epoch seconds: refused, not guessed
-    ("yesterday", "no rows"),                 # text that is not a time
+    ("yesterday", "reads as a time"),         # text that is not a time
 ])
 def test_timestamps_that_are_not_timestamps_give_one_message(tmp_path, cold_store, capsys, stamp, expected):
     log = tmp_path / "probe.csv"

@@ -67,6 +67,9 @@ def _rates(hours: dict[int, int], first_h: int, last_h: int) -> dict[str, Any]:
 def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], start: float | None,
                      end: float | None) -> dict[str, Any]:
     first, last, rows_all, bad_ts = scan.time_range(con, source)
+    if rows_all and bad_ts == rows_all:
+        raise StagewatchError(f"no value in column '{source.time_column}' reads as a time", file=source.pattern,
+                              expected="ISO 8601 timestamps such as 2026-03-01T06:00:00Z")
     lo = start if start is not None else (first - 1 if first is not None else None)
     hi = end if end is not None else last
     hours = scan.hourly(con, source, lo, hi)
