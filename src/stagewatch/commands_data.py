@@ -80,6 +80,33 @@ def _check(args: argparse.Namespace) -> int:
     return exit_code(result)
 
 
+def _replay(args: argparse.Namespace) -> int:
+    from stagewatch import yamlio
+    from stagewatch.data import replay_report
+    from stagewatch.data.replay import exit_code, run_replay
+    from stagewatch.data.sources import parse_data_args
+    from stagewatch.plan import load_plan
+
+    data = parse_data_args(args.data)
+    with _progress(len(data)) as step:
+        result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
+                            time_column=args.time_column, injection=args.inject, progress=step)
+    plan, _ = load_plan(args.plan)
+    if args.format == "table":
+        if args.output:
+            yamlio.write_atomic(args.output, replay_report.to_markdown(result, plan))
+        replay_report.print_table(result, plan)
+    else:
+        text = (replay_report.to_json(result, plan) if args.format == "json"
+                else replay_report.to_markdown(result, plan))
+        if args.output:
+            yamlio.write_atomic(args.output, text)
+            print(f"wrote {args.output}", file=sys.stderr)
+        else:
+            sys.stdout.write(text)
+    return exit_code(result)
+
+
 def add_parsers(sub: Any) -> None:
     p = sub.add_parser("calibrate", help="make a baseline from reference logs (edges, categories, shares, rates)",
                        description="Read each stage's reference logs and write BASELINE_DIR/baseline.json: per "
@@ -108,6 +135,26 @@ def add_parsers(sub: Any) -> None:
     p.add_argument("--format", choices=("table", "json", "markdown", "openmetrics"), default="table")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
     p.set_defaults(func=_check)
+
+    p = sub.add_parser("replay", help="how often the plan would have fired on your own history",
+                       description="Run every input and output check at every evaluation time between --from and "
+                       "--to, as the Prometheus export evaluates it (--cadence tumbling: once per window; 1m: every "
+                       "minute over a sliding window), in one scan per stage. Reports firings, episodes and firings "
+                       "per week against what the plan expects, per check and for the pipeline, and a timeline. "
+                       "--inject applies a change from a time on and reports how long each check took to catch it. "
+                       "Exit 1 when the replayed pages per week exceed the plan's budget.")
+    p.add_argument("plan", metavar="PLAN.yaml")
+    p.add_argument("--baseline", required=True, metavar="BASELINE_DIR")
+    _data_options(p)
+    p.add_argument("--from", dest="start", required=True, metavar="T", help="start of the period (ISO 8601)")
+    p.add_argument("--to", dest="end", required=True, metavar="T", help="end of the period")
+    p.add_argument("--cadence", choices=("tumbling", "1m"), default="tumbling",
+                   help="tumbling (default, as the export evaluates sized checks) or 1m (sliding, every minute)")
+    p.add_argument("--inject", metavar="STAGE.COLUMN=KIND:SIZE@T",
+                   help="a change to apply from T: shift:SDs, scale:factor, swap:a/b, missing:share, volume:share")
+    p.add_argument("--format", choices=("table", "json", "markdown"), default="table")
+    p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
+    p.set_defaults(func=_replay)
 
 
 def _data_options(p: argparse.ArgumentParser) -> None:

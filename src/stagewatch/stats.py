@@ -427,6 +427,43 @@ def ks_binning_error(reference_counts: np.ndarray, window_counts: np.ndarray) ->
     win = np.asarray(window_counts, dtype=float)
     return float(max(np.max(ref / ref.sum()), np.max(win / win.sum())))
 
+
+# Many windows at once (replay evaluates every window of a month): rows are windows, columns bins or categories.
+
+
+def psi_many(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = 0.5) -> np.ndarray:
+    """:func:`psi` of each row of ``window_counts`` against one reference (the same smoothing)."""
+    e = np.asarray(reference_counts, dtype=float) + smoothing
+    a = np.atleast_2d(np.asarray(window_counts, dtype=float)) + smoothing
+    e = e / e.sum()
+    a = a / a.sum(axis=1, keepdims=True)
+    return np.sum((a - e) * np.log(a / e), axis=1)
+
+
+def effect_size_w_many(reference_counts: np.ndarray, window_counts: np.ndarray) -> np.ndarray:
+    """:func:`effect_size_w` of each row (categories empty in both samples of a row contribute nothing)."""
+    ref = np.asarray(reference_counts, dtype=float)
+    win = np.atleast_2d(np.asarray(window_counts, dtype=float))
+    m, n = ref.sum(), win.sum(axis=1, keepdims=True)
+    column = ref + win
+    total = m + n
+    with np.errstate(divide="ignore", invalid="ignore"):
+        e_ref = m * column / total
+        e_win = n * column / total
+        terms = np.where(column > 0, (ref - e_ref) ** 2 / e_ref + (win - e_win) ** 2 / e_win, 0.0)
+        chi2 = terms.sum(axis=1)
+        n_eff = (n[:, 0] * m) / (n[:, 0] + m)
+        return np.sqrt(chi2 / n_eff)
+
+
+def ks_many(reference_counts: np.ndarray, window_counts: np.ndarray) -> np.ndarray:
+    """:func:`ks_from_counts` of each row (NaN where a row is empty)."""
+    ref = np.asarray(reference_counts, dtype=float)
+    win = np.atleast_2d(np.asarray(window_counts, dtype=float))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        cw = np.cumsum(win, axis=1) / win.sum(axis=1, keepdims=True)
+    return np.max(np.abs(np.cumsum(ref) / ref.sum() - cw), axis=1)
+
 # --- SLO burn rates -------------------------------------------------------------------------------------------
 
 # The SRE Workbook's recommended starting points (ch. 5, table 5-8), as (severity, long window, budget share).

@@ -126,11 +126,27 @@ def _row(metric: dict[str, Any], stage: str, window: str, verdict_: str, **kw: A
                     columns=contract.columns_of(metric["reads"]), edge=metric.get("edge"), **kw)
 
 
-def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
-                 at: float, window_override: str | None) -> list[CheckRow]:
+@dataclass
+class Runnable:
+    metric: dict[str, Any]
+    measure: Measure
+    ref: dict[str, Any]
+    seconds: int | None  # the window; None: the whole input
+
+    @property
+    def window(self) -> str:
+        return "all" if self.seconds is None else durations.format(self.seconds)
+
+    def aggregates(self) -> list[Any]:
+        return [a.__class__(f"{self.metric['id']}#{a.key}", a.expr) for a in self.measure.aggregates(self.ref)]
+
+
+def prepare(source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
+            window_override: str | None) -> tuple[list[CheckRow], list[Runnable]]:
+    """Split a stage's checks into those that cannot be measured (as rows saying why) and those that can."""
     numeric_columns = {c for c in source.columns if source.is_numeric(c)}
     rows: list[CheckRow] = []
-    runnable: list[tuple[dict[str, Any], Measure, dict[str, Any], int | None]] = []
+    runnable: list[Runnable] = []
     for metric in metrics:
         seconds = _window_seconds(metric, window_override)
         window = "all" if seconds is None else durations.format(seconds)
@@ -148,13 +164,17 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
             rows.append(_row(metric, source.stage, window, "not_measured",
                              words="the check changed since the baseline was made; re-run calibrate"))
         else:
-            runnable.append((metric, measure, ref, seconds))
+            runnable.append(Runnable(metric, measure, ref, seconds))
+    return rows, runnable
+
+
+def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
+                 at: float, window_override: str | None) -> list[CheckRow]:
+    rows, runnable = prepare(source, metrics, stage_ref, window_override)
     if not runnable:
         return rows
-    aggregates = []
-    for metric, measure, ref, _ in runnable:
-        aggregates += [a.__class__(f"{metric['id']}#{a.key}", a.expr) for a in measure.aggregates(ref)]
-    timed = [s for *_, s in runnable if s is not None]
+    aggregates = [a for r in runnable for a in r.aggregates()]
+    timed = [r.seconds for r in runnable if r.seconds is not None]
     if len(timed) == len(runnable):
         step = float(reduce(math.gcd, timed))
         buckets = scan.run(con, source, aggregates, start=at - max(timed), end=at, step=step)
@@ -162,7 +182,8 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
         step = 0.0
         buckets = scan.run(con, source, aggregates)
     first_ts, last_ts, *_ = scan.time_range(con, source)
-    for metric, measure, ref, seconds in runnable:
+    for r in runnable:
+        metric, measure, ref, seconds = r.metric, r.measure, r.ref, r.seconds
         keys = [a.key for a in measure.aggregates(ref)]
         prefixed = [f"{metric['id']}#{k}" for k in keys]
         if seconds is None:
@@ -174,7 +195,6 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
         counts = {k.split("#", 1)[1]: v for k, v in summed.items()}
         expected = expected_rows(stage_ref, start, end) if metric["statistic"] == "count" else None
         result = measure.evaluate(ref, counts, expected)
-        window = "all" if seconds is None else durations.format(seconds)
         if metric["statistic"] == "level":
             v = level_verdict(result.value or 0.0, metric.get("warn"), metric.get("critical"))
         elif result.value is None or (result.n or 0) < min_samples(metric):
@@ -184,7 +204,7 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
         words = result.words
         if v == "insufficient" and result.value is not None:
             words = f"{result.n:,} samples, {min_samples(metric):,} needed; " + words
-        row = _row(metric, source.stage, window, v, value=result.value, n=result.n, m=result.m, words=words,
+        row = _row(metric, source.stage, r.window, v, value=result.value, n=result.n, m=result.m, words=words,
                    detail=result.detail)
         if measure.condition == "unseen" and result.detail.get("matches"):
             row.detail["unseen_values"] = scan.values_not_in(con, source, measure.column or "",

@@ -180,50 +180,75 @@ class Measure:
                 ag.Aggregate("n", ag.rows() if base is None else ag.count_if(base))]
 
     # --- value ---------------------------------------------------------------------------------------------
-    def evaluate(self, ref: dict[str, Any], counts: dict[str, float], expected: float | None = None) -> Evaluation:
+    def _matrix(self, counts: dict[str, Any], prefix: str) -> np.ndarray:
+        keys = sorted((k for k in counts if k.startswith(prefix)), key=lambda k: int(k[len(prefix):]))
+        return np.column_stack([np.atleast_1d(np.asarray(counts[k], dtype=float)) for k in keys])
+
+    def values(self, ref: dict[str, Any], counts: dict[str, Any], expected: Any = None
+               ) -> tuple[np.ndarray, np.ndarray, int | None]:
+        """The statistic for many windows at once: (value per window, NaN where undefined; samples n; m).
+
+        ``counts`` maps each aggregate key to an array over windows (or a number for one window).
+        """
         s = self.statistic
         if s in ("psi", "ks", "chi_square"):
-            prefix = "cat" if s == "chi_square" else "bin"
-            keys = sorted((k for k in counts if k.startswith(prefix)), key=lambda k: int(k[len(prefix):]))
-            win = np.array([counts[k] for k in keys], dtype=float)
-            rc = np.array(ref["counts"], dtype=float)
-            n, m = int(win.sum()), int(rc.sum())
-            if n == 0:
-                return Evaluation(None, 0, m, "no values in the window", {})
-            if s == "psi":
-                value = stats.psi(rc, win)
-            elif s == "ks":
-                value = stats.ks_from_counts(rc, win)
-            else:
-                value = stats.effect_size_w(rc, win)
+            win = self._matrix(counts, "cat" if s == "chi_square" else "bin")
+            rc = np.asarray(ref["counts"], dtype=float)
+            n = win.sum(axis=1)
+            fn = {"psi": stats.psi_many, "ks": stats.ks_many, "chi_square": stats.effect_size_w_many}[s]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                value = np.where(n > 0, fn(rc, win), np.nan)
+            return value, n, int(rc.sum())
+        if s == "mean":
+            n = np.atleast_1d(np.asarray(counts["n"], dtype=float))
+            sd = ref.get("sd")
+            with np.errstate(divide="ignore", invalid="ignore"):
+                mean = np.atleast_1d(np.asarray(counts["sum"], dtype=float)) / n
+                value = (mean - ref["mean"]) / sd if sd and math.isfinite(sd) and sd > 0 else mean * np.nan
+            return np.where(n > 0, value, np.nan), n, ref.get("n")
+        if s == "count":
+            n = np.atleast_1d(np.asarray(counts["n"], dtype=float))
+            exp_ = np.atleast_1d(np.asarray(np.nan if expected is None else expected, dtype=float))
+            with np.errstate(divide="ignore", invalid="ignore"):
+                value = np.where(exp_ > 0, n / exp_ - 1, np.nan)
+            return value, np.round(np.nan_to_num(exp_)), None
+        matches = np.atleast_1d(np.asarray(counts["matches"], dtype=float))
+        n = np.atleast_1d(np.asarray(counts["n"], dtype=float))
+        if s == "level":
+            return matches, n, None
+        with np.errstate(divide="ignore", invalid="ignore"):
+            value = np.where(n > 0, matches / n - ref["share"], np.nan)
+        return value, n, ref.get("n")
+
+    def evaluate(self, ref: dict[str, Any], counts: dict[str, float], expected: float | None = None) -> Evaluation:
+        """One window: the value, its samples and the change in words."""
+        values, ns, m = self.values(ref, counts, expected)
+        raw, n = float(values[0]), int(ns[0])
+        value = None if math.isnan(raw) else raw
+        s = self.statistic
+        if value is None:
+            why = {"count": "no reference rate for this time", "mean": "no values in the window"}.get(
+                s, "no values in the window" if s in DISTRIBUTIONS else "no rows the share applies to")
+            return Evaluation(None, n, m, why, {})
+        if s in ("psi", "ks", "chi_square"):
+            win = self._matrix(counts, "cat" if s == "chi_square" else "bin")[0]
+            rc = np.asarray(ref["counts"], dtype=float)
             return Evaluation(value, n, m, self._distribution_words(ref, rc, win), {
                 "reference_counts": rc.astype(int).tolist(), "window_counts": win.astype(int).tolist()})
         if s == "mean":
-            n = int(counts["n"])
-            if n == 0:
-                return Evaluation(None, 0, ref.get("n"), "no values in the window", {})
-            mean = counts["sum"] / n
-            sd = ref["sd"] or float("nan")
-            value = (mean - ref["mean"]) / sd if sd and math.isfinite(sd) and sd > 0 else None
-            return Evaluation(value, n, ref.get("n"), f"mean {_num(mean)} against {_num(ref['mean'])} in the "
-                              f"reference ({'' if value is None else f'{value:+.2f} reference SD'})", {"mean": mean})
+            mean = counts["sum"] / counts["n"]
+            return Evaluation(value, n, m, f"mean {_num(mean)} against {_num(ref['mean'])} in the reference "
+                              f"({value:+.2f} reference SD)", {"mean": mean})
         if s == "count":
-            n = int(counts["n"])
-            if not expected:
-                return Evaluation(None, n, None, "no reference rate for this time", {})
-            value = n / expected - 1
-            return Evaluation(value, int(round(expected)), None,
-                              f"{n:,} rows against {expected:,.0f} expected ({value:+.0%})", {"expected": expected})
-        matches, n = int(counts["matches"]), int(counts["n"])
+            rows = int(counts["n"])
+            return Evaluation(value, n, None, f"{rows:,} rows against {expected:,.0f} expected ({value:+.0%})",
+                              {"expected": expected, "rows": rows})
+        matches = int(counts["matches"])
         if s == "level":
-            return Evaluation(float(matches), n, None, f"{matches:,} of {n:,} rows", {})
-        if n == 0:
-            return Evaluation(None, 0, ref.get("n"), "no rows the share applies to", {})
+            return Evaluation(value, n, None, f"{matches:,} of {n:,} rows", {})
         share = matches / n
-        ref_share = ref["share"]
-        return Evaluation(share - ref_share, n, ref.get("n"),
-                          f"share {_pct(share)} against {_pct(ref_share)} in the reference",
-                          {"share": share, "reference_share": ref_share, "matches": matches})
+        return Evaluation(value, n, m, f"share {_pct(share)} against {_pct(ref['share'])} in the reference",
+                          {"share": share, "reference_share": ref["share"], "matches": matches})
 
     def reference_from_counts(self, ref: dict[str, Any], counts: dict[str, float]) -> dict[str, Any]:
         """The reference block a baseline stores: edges or categories plus the reference's own counts."""

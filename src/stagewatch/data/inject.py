@@ -1,0 +1,111 @@
+"""Injected changes for replay: ``STAGE.COLUMN=KIND:SIZE@T`` applied to a stage's log from time T on.
+
+Kinds: ``shift`` (add SIZE reference standard deviations), ``scale`` (stretch deviations from the reference mean
+by SIZE), ``swap`` (SIZE is ``a/b``: the two categories trade places), ``missing`` (a share SIZE of rows lose the
+value), ``volume`` (a share SIZE of rows disappear). Rows are picked by a hash of their timestamp, so a replay is
+repeatable. The change is a view over the log; the files are never touched.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass
+from typing import Any
+
+from sqlglot import exp
+
+from stagewatch.data import aggregates as ag
+from stagewatch.data.sources import TS, Source, parse_time
+from stagewatch.errors import StagewatchError
+
+KINDS = ("shift", "scale", "swap", "missing", "volume")
+_FORM = re.compile(r"^(?P<stage>[^.=]+)\.(?P<column>[^=]+)=(?P<kind>[a-z]+):(?P<size>[^@]+)@(?P<at>.+)$")
+
+
+@dataclass(frozen=True)
+class Injection:
+    stage: str
+    column: str
+    kind: str
+    size: str
+    at: float
+    text: str
+
+    @property
+    def number(self) -> float:
+        return float(self.size)
+
+
+def parse(text: str) -> Injection:
+    match = _FORM.match(text.strip())
+    expected = "STAGE.COLUMN=KIND:SIZE@T, e.g. load_cell.weight_g=shift:1.5@2026-11-05T06:00Z (kinds: " + \
+        ", ".join(KINDS) + ")"
+    if not match:
+        raise StagewatchError(f"--inject {text!r} is not a change", expected=expected)
+    kind = match["kind"]
+    if kind not in KINDS:
+        raise StagewatchError(f"--inject: unknown kind '{kind}'", expected=expected)
+    size = match["size"]
+    if kind == "swap":
+        if size.count("/") != 1:
+            raise StagewatchError(f"--inject: swap needs two categories, got {size!r}", expected="swap:a/b")
+    else:
+        try:
+            value = float(size)
+        except ValueError:
+            raise StagewatchError(f"--inject: size {size!r} is not a number", expected=expected) from None
+        if kind in ("missing", "volume") and not 0 < value <= 1:
+            raise StagewatchError(f"--inject: a {kind} share must be in (0, 1], got {value}", expected=expected)
+    at = parse_time(match["at"], "--inject")
+    assert at is not None
+    return Injection(match["stage"], match["column"], kind, size, at, text)
+
+
+def _draw() -> exp.Expression:
+    """A repeatable number in [0, 1) per row, from a hash of its timestamp."""
+    hashed = exp.func("hash", exp.column(TS))
+    return exp.Div(this=exp.paren(exp.Mod(this=hashed, expression=ag.lit(1000003))), expression=ag.lit(1000003.0))
+
+
+def apply(con: Any, source: Source, injection: Injection, reference: dict[str, Any]) -> Source:
+    """A new view of ``source`` with the change applied; ``reference`` is the baseline's summary of the column."""
+    if injection.kind != "volume" and not source.has(injection.column):
+        raise StagewatchError(f"--inject: the log of {source.stage} has no column '{injection.column}'",
+                              file=source.pattern)
+    after = exp.GTE(this=exp.column(TS), expression=ag.lit(injection.at))
+    value = ag.number(injection.column) if injection.kind in ("shift", "scale") else ag.col(injection.column)
+    where = None
+    changed: exp.Expression | None = None
+    if injection.kind in ("shift", "scale"):
+        mean, sd = reference.get("mean"), reference.get("sd")
+        if mean is None or not sd:
+            raise StagewatchError(f"--inject: the baseline has no mean and spread for {injection.stage}."
+                                  f"{injection.column}", expected="a numeric column that a check of the plan reads")
+        if injection.kind == "shift":
+            changed = exp.Add(this=value, expression=ag.lit(injection.number * float(sd)))
+        else:
+            changed = exp.Add(this=ag.lit(float(mean)), expression=exp.Mul(
+                this=exp.paren(exp.Sub(this=value, expression=ag.lit(float(mean)))), expression=ag.lit(injection.number)))
+    elif injection.kind == "swap":
+        a, b = injection.size.split("/")
+        text = ag.text(injection.column)
+        changed = exp.Case(ifs=[exp.If(this=exp.EQ(this=text.copy(), expression=ag.lit(a)), true=ag.lit(b)),
+                                exp.If(this=exp.EQ(this=text.copy(), expression=ag.lit(b)), true=ag.lit(a))],
+                           default=text.copy())
+    elif injection.kind == "missing":
+        changed = exp.Case(ifs=[exp.If(this=exp.LT(this=_draw(), expression=ag.lit(injection.number)),
+                                       true=exp.null())], default=value)
+    else:
+        where = exp.not_(exp.and_(after.copy(), exp.LT(this=_draw(), expression=ag.lit(injection.number))))
+    items: list[exp.Expression] = [exp.Star()]
+    if changed is not None:
+        new = exp.Case(ifs=[exp.If(this=after.copy(), true=changed)], default=ag.col(injection.column))
+        star = exp.Star(**{"replace": [exp.alias_(new, injection.column, quoted=True)]})
+        items = [star]
+    query = exp.select(*items).from_(exp.to_table(source.view))
+    if where is not None:
+        query = query.where(where)
+    view = source.view + "_changed"
+    con.execute(f"CREATE OR REPLACE VIEW {view} AS {ag.sql(query)}")  # view names are ours
+    return Source(stage=source.stage, pattern=source.pattern, paths=source.paths, view=view,
+                  columns=source.columns, time_column=source.time_column, files=source.files)
