@@ -1,0 +1,111 @@
+"""replay: every evaluation recomputed from raw values with numpy, agreement with `check`, detection delays that
+fall as the change grows, exit codes."""
+
+from __future__ import annotations
+
+import json
+
+import duckdb
+import numpy as np
+import pytest
+import yaml
+
+from datagen import T0, data_args, write_declared_logs
+from stagewatch.cli import main
+from stagewatch.data.replay import run_replay
+from stagewatch.data.sources import format_time
+from test_data_check import COLD_STORE, REF_END
+
+DAY = 86400.0
+PERIOD = ["--from", format_time(T0), "--to", format_time(T0 + 14 * DAY)]
+
+
+@pytest.fixture(scope="module")
+def store(tmp_path_factory):
+    work = tmp_path_factory.mktemp("store")
+    (work / "pipeline.yaml").write_text(COLD_STORE)
+    plan = work / "plan.yaml"
+    assert main(["propose", str(work / "pipeline.yaml"), "-o", str(plan)]) == 0
+    paths = write_declared_logs(yaml.safe_load(plan.read_text()), work / "logs")
+    assert main(["calibrate", str(plan), *data_args(paths), "--to", REF_END, "-o", str(work / "base")]) == 0
+    return plan, work / "base", paths
+
+
+def _raw(path: str) -> tuple[np.ndarray, np.ndarray]:
+    con = duckdb.connect()
+    ts, temp = zip(*con.execute(f"SELECT epoch(timestamp), temp_c FROM '{path}'").fetchall())
+    return np.array(ts, float), np.array([np.nan if v is None else v for v in temp], float)
+
+
+def test_every_replayed_value_equals_numpy_on_the_raw_rows_and_check_at_that_time(store, capsys):
+    plan, base, paths = store
+    result = run_replay(str(plan), str(base), paths, start=PERIOD[1], end=PERIOD[3])
+    level = next(c for c in result.checks if c.id == "probe.input.level_shift")
+    ref = json.loads((base / "baseline.json").read_text())["baseline"]["stages"]["probe"]["checks"][level.id]
+    ts, temp = _raw(paths["probe"])
+    seconds = {"1h": 3600, "2h": 7200, "3h": 10800, "6h": 21600}[level.window]
+    assert level.evaluations == pytest.approx(14 * DAY / seconds, abs=1)
+    for t, value in zip(level.times, level.values):
+        inside = (ts > t - seconds) & (ts <= t) & np.isfinite(temp)
+        direct = (temp[inside].mean() - ref["mean"]) / ref["sd"]  # numpy on the raw rows
+        assert value == pytest.approx(direct, rel=1e-9, abs=1e-12)
+    # `check` at one evaluation time gives the same value
+    t = level.times[len(level.times) // 2]
+    capsys.readouterr()
+    main(["check", str(plan), "--baseline", str(base), *data_args(paths), "--at", format_time(t), "--format", "json"])
+    checked = {c["id"]: c for c in json.loads(capsys.readouterr().out)["checks"]}
+    assert checked[level.id]["value"] == pytest.approx(level.values[len(level.times) // 2], rel=1e-9)
+
+
+def test_detection_delay_falls_as_the_shift_grows(store):
+    plan, base, paths = store
+    at = T0 + 13 * DAY + 3 * 3600
+    delays = {}
+    for size in (0.5, 1.0, 2.0):
+        result = run_replay(str(plan), str(base), paths, start=format_time(T0 + 12 * DAY),
+                            end=format_time(T0 + 14 * DAY), cadence="1m",
+                            injection=f"probe.temp_c=shift:{size}@{format_time(at)}")
+        check = next(c for c in result.checks if c.id == "probe.input.level_shift")
+        delays[size] = check.detection_delay_s
+        assert [g["stage"] for g in result.attribution][:1] == ["probe"]
+    assert delays[2.0] is not None and delays[1.0] is not None
+    assert delays[2.0] <= delays[1.0] <= (delays[0.5] if delays[0.5] is not None else float("inf"))
+    assert delays[2.0] < delays[1.0] or delays[1.0] == 60.0
+
+
+def test_sliding_evaluation_counts_minutes_and_episodes_never_exceed_firings(store):
+    plan, base, paths = store
+    result = run_replay(str(plan), str(base), paths, start=format_time(T0 + 12 * DAY),
+                        end=format_time(T0 + 13 * DAY), cadence="1m")
+    for c in result.checks:
+        assert c.evaluations == pytest.approx(1440, abs=1)
+        assert c.episodes <= c.warn_firings + c.critical_firings
+
+
+def test_pages_over_budget_exit_1_and_json_reports_the_pipeline(store, capsys, tmp_path):
+    plan, base, paths = store
+    capsys.readouterr()
+    code = main(["replay", str(plan), "--baseline", str(base), *data_args(paths), *PERIOD, "--format", "json"])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == (1 if doc["pipeline"]["over_budget"] else 0)
+    # a page-severity share that jumps: the pipeline goes over its budget of one false page a week
+    code = main(["replay", str(plan), "--baseline", str(base), *data_args(paths), *PERIOD, "--format", "json",
+                 "--inject", f"probe.temp_c=missing:0.5@{format_time(T0 + 7 * DAY)}"])
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["pipeline"]["over_budget"] and code == 1
+    missing = next(c for c in doc["checks"] if c["id"] == "probe.input.temp_c_missing")
+    assert missing["critical_firings"] > 0 and "C" in missing["timeline"]
+    assert doc["injection"]["detection"]["probe.input.temp_c_missing"] is not None
+
+
+@pytest.mark.parametrize("bad,expected", [
+    ("probe.temp_c=shift:1", "is not a change"),
+    ("probe.temp_c=melt:1@2026-03-10", "unknown kind"),
+    ("probe.temp_c=missing:3@2026-03-10", "(0, 1]"),
+    ("probe.nope=shift:1@2026-03-10", "no column 'nope'"),
+])
+def test_bad_injections_give_one_message(store, capsys, bad, expected):
+    plan, base, paths = store
+    capsys.readouterr()
+    assert main(["replay", str(plan), "--baseline", str(base), *data_args(paths), *PERIOD, "--inject", bad]) == 2
+    assert expected in capsys.readouterr().err
