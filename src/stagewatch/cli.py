@@ -29,7 +29,7 @@ class _Parser(argparse.ArgumentParser):
 def _propose(args: argparse.Namespace) -> int:
     from stagewatch.propose import propose
 
-    text, rep = propose(args.pipeline, args.output, args.catalog)
+    text, rep = propose(args.pipeline, args.output, args.catalog, args.baseline)
     if rep is None:
         sys.stdout.write(text)
     else:
@@ -114,6 +114,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("pipeline", metavar="PIPELINE.yaml", help="the pipeline description")
     p.add_argument("-o", "--output", metavar="PLAN.yaml", help="plan file to write or merge into (default: stdout)")
     p.add_argument("--catalog", metavar="DIR", help="use the rule catalog in DIR instead of the shipped one")
+    p.add_argument("--baseline", metavar="BASELINE_DIR", help="raise thresholds to what the reference data needs "
+                   "(a baseline from `stagewatch calibrate --thresholds`); reviewers' numbers are kept")
     p.set_defaults(func=_propose)
 
     p = sub.add_parser("lint", help="check a plan's form and coverage",

@@ -36,6 +36,11 @@ def _calibrate(args: argparse.Namespace) -> int:
     with _progress(len(data)) as step:
         lines = calibrate(args.plan, data, args.output, time_column=args.time_column, start=args.start,
                           end=args.end, progress=step)
+    if args.thresholds:
+        from stagewatch.data.baseline import add_thresholds
+
+        with _progress(len(data)) as step:
+            lines += add_thresholds(args.plan, args.output, data, time_column=args.time_column, progress=step)
     if args.format == "openmetrics":
         from stagewatch.data.report import reference_openmetrics
         from stagewatch.plan import load_plan
@@ -120,6 +125,8 @@ def add_parsers(sub: Any) -> None:
     p.add_argument("-o", "--output", metavar="BASELINE_DIR", required=True, help="directory to write baseline.json into")
     p.add_argument("--format", choices=("text", "openmetrics"), default="text",
                    help="openmetrics: print the reference gauges to standard output")
+    p.add_argument("--thresholds", action="store_true",
+                   help="also replay the reference period and store thresholds from data (for propose --baseline)")
     p.set_defaults(func=_calibrate)
 
     p = sub.add_parser("check", help="run the plan's input and output checks on logs against a baseline",

@@ -146,8 +146,8 @@ def _apply_sizing(metric: dict[str, Any], traffic: sizing.Traffic, budget: sizin
     metric["critical"] = result["critical"]
 
 
-def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[str, Any] | None = None
-            ) -> dict[str, Any]:
+def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[str, Any] | None = None,
+            data_thresholds: dict[str, Any] | None = None) -> dict[str, Any]:
     """The plan for ``pipeline``; with ``existing`` (a loaded plan), merged so that no human edit is lost."""
     graph = PipelineGraph.build(pipeline)
     rules = rules if rules is not None else load_catalog()
@@ -203,9 +203,43 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             known = context.traffic(owner, edge_t, _is_quality(metric))
         if known is not None and metric.get("status") != "stale" and metric.get("window"):
             _apply_sizing(metric, known, budget, refresh=metric_id not in kept)
+            if data_thresholds and metric_id not in kept:
+                _apply_data_thresholds(metric, data_thresholds)
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)
     return _assemble(pipeline, graph, merged, kept, existing)
+
+
+def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any]) -> None:
+    """Raise warn and critical to what the reference data needs to hold the check's alpha; never lower them."""
+    fitted = found.get("checks", {}).get(metric["id"])
+    if not fitted or fitted.get("signature") != contract.signature(metric):
+        return
+    raised = []
+    for level in ("warn", "critical"):
+        current, needed = metric.get(level), fitted.get(level)
+        if current is None or needed is None:
+            continue
+        value = sizing.round_up(float(needed), 2)
+        if value > current:
+            metric[level] = value
+            raised.append(f"{level} {current:g} -> {value:g}")
+    if metric.get("warn") is not None and metric.get("critical") is not None and metric["warn"] > metric["critical"]:
+        metric["warn"] = metric["critical"]
+    period = found.get("period", {})
+    note = {"period": f"{period.get('from')} to {period.get('to')}", "day_blocks": fitted["blocks"],
+            "windows": fitted["windows"], "dispersion": fitted["dispersion"],
+            "dispersion_upper": fitted["dispersion_upper"],
+            "critical": sizing._sig(fitted.get("critical"), 3), "warn": sizing._sig(fitted.get("warn"), 3)}
+    block = metric.setdefault("sizing", {})
+    block["from_data"] = note
+    block["derivation"] = (block.get("derivation", "") + " From data: replaying the reference "
+                           f"({note['period']}, {note['windows']} windows, {note['day_blocks']} whole days resampled) "
+                           f"the statistic spreads {fitted['dispersion']:.3g}x as much as with independent items (upper "
+                           f"90%: {fitted['dispersion_upper']:.3g}); holding this check's alpha over those windows needs "
+                           f"critical >= {note['critical']}" + (f" and warn >= {note['warn']}" if note["warn"] else "")
+                           + ("; raised " + ", ".join(raised) if raised else "; the thresholds already hold it")
+                           + ".").strip()
 
 
 def _existing_metrics(plan: dict[str, Any]) -> dict[str, dict[str, Any]]:

@@ -73,15 +73,20 @@ def report(path: str, before: dict[str, Any] | None, after: dict[str, Any]) -> M
     return rep
 
 
-def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None = None
-            ) -> tuple[str, MergeReport | None]:
+def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None = None,
+            baseline_dir: str | None = None) -> tuple[str, MergeReport | None]:
     """Compose (and merge) the plan; returns its text and, when written to a file, what changed."""
     pipeline = spec.load_pipeline(pipeline_path)
     rules = load_catalog(catalog_dir)
     existing = None
     if plan_path and Path(plan_path).exists():
         existing, _ = plan_mod.load_plan(plan_path)
-    composed = plan_mod.compose(pipeline, rules, existing)
+    found = None
+    if baseline_dir:
+        from stagewatch.data.baseline import load_thresholds
+
+        found = load_thresholds(baseline_dir, pipeline.name)
+    composed = plan_mod.compose(pipeline, rules, existing, found)
     text = plan_mod.dump(composed)
     if not plan_path or plan_path == "-":
         return text, None

@@ -173,14 +173,50 @@ def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column
         "period": {"from": start, "to": end},
         "stages": stages,
     })
-    text = json.dumps({"sha256": hashlib.sha256(_canonical(body).encode()).hexdigest(), "baseline": body},
-                      indent=1, sort_keys=True, allow_nan=False) + "\n"
     path = os.path.join(out_dir, FILE)
-    yamlio.write_atomic(path, text)
+    _write(path, body)
     lines.append(f"wrote {path}")
     if missing_stages:
         lines.append("no --data for " + ", ".join(missing_stages) + ": their checks have no baseline")
     return lines
+
+
+def _write(path: str, body: dict[str, Any]) -> None:
+    text = json.dumps({"sha256": hashlib.sha256(_canonical(body).encode()).hexdigest(), "baseline": body},
+                      indent=1, sort_keys=True, allow_nan=False) + "\n"
+    yamlio.write_atomic(path, text)
+
+
+def add_thresholds(plan_path: str, out_dir: str, data: dict[str, str], *, time_column: str,
+                   progress: Callable[[str], None] | None = None) -> list[str]:
+    """Replay the reference period against its own baseline and store data-based thresholds in the baseline."""
+    from stagewatch.data.replay import run_replay
+    from stagewatch.data.thresholds import fit
+    from stagewatch.plan import load_plan
+
+    plan, _ = load_plan(plan_path)
+    path = os.path.join(out_dir, FILE)
+    body = load_baseline(out_dir, plan)
+    starts = [s["period"]["from"] for s in body["stages"].values()]
+    ends = [s["period"]["to"] for s in body["stages"].values()]
+    start, end = min(starts), max(ends)
+    result = run_replay(plan_path, out_dir, data, start=start, end=end, time_column=time_column, progress=progress)
+    metrics = {m["id"]: m for ms in contract.checks_by_stage(plan).values() for m in ms}
+    found: dict[str, Any] = {}
+    lo = sources.parse_time(start, "--from") or 0.0
+    for c in result.checks:
+        metric = metrics[c.id]
+        ref = body["stages"][c.stage]["checks"][c.id]
+        sizing = metric.get("sizing") or {}
+        fitted = fit(metric, ref, c.values, c.samples, c.reference_samples, c.times, lo,
+                     {"critical": sizing.get("alpha"), "warn": sizing.get("warn_alpha")})
+        if fitted:
+            fitted["signature"] = contract.signature(metric)
+            found[c.id] = _clean(fitted)
+    body["thresholds"] = {"period": {"from": start, "to": end}, "cadence": result.cadence, "checks": found}
+    _write(path, body)
+    return [f"thresholds from data for {len(found)} check(s): {start} to {end}, whole days resampled "
+            f"({max((f['blocks'] for f in found.values()), default=0)} days)"]
 
 
 def load_baseline(directory: str, plan: dict[str, Any]) -> dict[str, Any]:
@@ -209,3 +245,13 @@ def load_baseline(directory: str, plan: dict[str, Any]) -> dict[str, Any]:
         raise StagewatchError(f"this baseline was made for pipeline '{made_for}', not '{plan.get('pipeline')}'",
                               file=path, expected="a baseline calibrated on this plan")
     return body
+
+
+def load_thresholds(directory: str, pipeline: str) -> dict[str, Any]:
+    """The thresholds from data of a baseline (``calibrate --thresholds``), for ``propose --baseline``."""
+    body = load_baseline(directory, {"pipeline": pipeline})
+    found = body.get("thresholds")
+    if not found:
+        raise StagewatchError("this baseline has no thresholds from data", file=os.path.join(directory, FILE),
+                              expected="a baseline written by `stagewatch calibrate ... --thresholds`")
+    return found

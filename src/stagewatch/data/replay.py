@@ -48,6 +48,8 @@ class CheckReplay:
     times: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
     levels: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0, dtype=int))  # 0 ok 1 warn 2 crit
     values: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+    samples: np.ndarray = field(repr=False, default_factory=lambda: np.zeros(0))
+    reference_samples: int | None = None
     first_critical_after: float | None = None
     detection_delay_s: float | None = None
 
@@ -183,7 +185,7 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
                 per_bucket = np.array([expected_rows(stage_ref, t - step, t) or 0.0 for t in ends])
                 expected_cum = np.concatenate([[0.0], np.cumsum(per_bucket)])
             expected = expected_cum[idx + 1] - expected_cum[idx + 1 - k]
-        values, n, _ = r.measure.values(r.ref, counts, expected)
+        values, n, m = r.measure.values(r.ref, counts, expected)
         levels, insufficient = _levels(r, values, n)
         sizing = r.metric.get("sizing") or {}
         planned_crit = sizing.get("expected_false_alarms_per_week")
@@ -204,7 +206,7 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
                                critical_firings=crit_n, episodes=episodes, insufficient=int(insufficient.sum()),
                                weeks=weeks, planned_critical_per_week=planned_crit, planned_warn_per_week=planned_warn,
                                verdict=verdict, factor=None if factor is None else round(factor, 3),
-                               times=times, levels=levels, values=values))
+                               times=times, levels=levels, values=values, samples=n, reference_samples=m))
     return out
 
 
