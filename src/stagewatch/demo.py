@@ -1,4 +1,4 @@
-"""`demo`: the whole flow on the bundled packhouse grading line."""
+"""`demo`: the whole flow on the bundled packhouse grading line, from the description to a replay of its logs."""
 
 from __future__ import annotations
 
@@ -19,6 +19,10 @@ DEMO = Path(__file__).resolve().parent / "examples" / "packhouse.yaml"
 
 
 def run_demo(out_dir: str) -> tuple[list[str], "CheckResult"]:
+    """Plan, logs, baseline with thresholds from data, the tuned plan and its exports, a check, two replays."""
+    from stagewatch.data.baseline import add_thresholds, calibrate
+    from stagewatch.demo_logs import DAYS, REFERENCE_DAYS, REFERENCE_END, iso, write_logs
+
     out = Path(out_dir)
     lines = []
     pipeline_path = out / "pipeline.yaml"
@@ -31,30 +35,8 @@ def run_demo(out_dir: str) -> tuple[list[str], "CheckResult"]:
     _, rep = propose(str(pipeline_path), str(plan_path))
     assert rep is not None  # written to a file, so there is a report
     lines.extend(rep.lines())
-    plan, doc = load_plan(str(plan_path))  # read back once, as every other command would read it
-    findings = lint_document(doc)
-    lines.append(f"lint {plan_path}: " + ("clean" if not findings else f"{len(findings)} finding(s)"))
-    lines.extend(f"  {f}" for f in findings)
-    for path in render(plan, out):
-        lines.append(f"wrote {path}: the plan for review (Markdown with a Mermaid diagram)")
-    lines.extend(EXPORTERS["prometheus"](plan, str(out / "prometheus")))
-    lines.extend(EXPORTERS["checks"](plan, str(out / "checks.json")))
-    result, data_lines = _data_side(plan, str(plan_path), out)
-    lines.extend(data_lines)
-    lines.append("next: edit status and note in the plan, re-run `stagewatch propose "
-                 f"{pipeline_path} -o {plan_path}` to merge, and `stagewatch explain {plan_path} METRIC_ID` for "
-                 "any number you doubt")
-    return lines, result
 
-
-def _data_side(plan: dict, plan_path: str, out: Path) -> tuple["CheckResult", list[str]]:
-    """Demo logs (five weeks), a baseline from the first four, and a check of the latest window."""
-    from stagewatch.data import report
-    from stagewatch.data.baseline import calibrate
-    from stagewatch.data.check import run_check
-    from stagewatch.demo_logs import DAYS, REFERENCE_DAYS, REFERENCE_END, iso, write_logs
-
-    lines = []
+    plan, _ = load_plan(str(plan_path))
     logs = out / "logs"
     data = {s["id"]: str(logs / f"{s['id']}.parquet") for s in plan["stages"]}
     if all(Path(p).is_file() for p in data.values()):
@@ -64,12 +46,55 @@ def _data_side(plan: dict, plan_path: str, out: Path) -> tuple["CheckResult", li
         lines.append(f"wrote {logs}/: {DAYS} days of demo logs per stage (Parquet, invented data with a daily "
                      "cycle; on the last days the frame gate is retuned)")
     baseline = out / "baseline"
-    lines.extend(calibrate(plan_path, data, str(baseline), end=iso(REFERENCE_END)))
-    lines.append(f"calibrated on the first {REFERENCE_DAYS} days")
-    result = run_check(plan_path, str(baseline), data)
+    lines.extend(calibrate(str(plan_path), data, str(baseline), end=iso(REFERENCE_END)))
+    lines.extend(add_thresholds(str(plan_path), str(baseline), data, time_column="timestamp"))
+    _, rep = propose(str(pipeline_path), str(plan_path), baseline_dir=str(baseline))
+    lines.append(f"re-proposed {plan_path} with --baseline {baseline}: thresholds raised where the first "
+                 f"{REFERENCE_DAYS} days need it to hold the budget")
+
+    plan, doc = load_plan(str(plan_path))  # read back once, as every other command would read it
+    findings = lint_document(doc)
+    lines.append(f"lint {plan_path}: " + ("clean" if not findings else f"{len(findings)} finding(s)"))
+    lines.extend(f"  {f}" for f in findings)
+    for path in render(plan, out):
+        lines.append(f"wrote {path}: the plan for review (Markdown with a Mermaid diagram)")
+    lines.extend(EXPORTERS["prometheus"](plan, str(out / "prometheus")))
+    lines.extend(EXPORTERS["checks"](plan, str(out / "checks.json")))
+    result, data_lines = _check_and_replay(plan, str(plan_path), out, data, str(baseline))
+    lines.extend(data_lines)
+    lines.append("next: edit status and note in the plan, re-run `stagewatch propose "
+                 f"{pipeline_path} -o {plan_path}` to merge, and `stagewatch explain {plan_path} METRIC_ID` for "
+                 "any number you doubt")
+    return lines, result
+
+
+def _check_and_replay(plan: dict, plan_path: str, out: Path, data: dict[str, str], baseline: str
+                      ) -> tuple["CheckResult", list[str]]:
+    """A check of the latest window, a replay of the reference weeks and one of the week the gate changed."""
+    from stagewatch.data import replay_report, report
+    from stagewatch.data.check import run_check
+    from stagewatch.data.replay import detect, run_replay
+    from stagewatch.data.sources import format_time
+    from stagewatch.demo_logs import CHANGE, REFERENCE_END, START, iso
+
+    lines = []
+    result = run_check(plan_path, baseline, data)
     for name, text in (("check.md", report.to_markdown(result)), ("check.json", report.to_json(result))):
         yamlio.write_atomic(out / name, text)
         lines.append(f"wrote {out / name}: the check of the latest window")
+    reference = run_replay(plan_path, baseline, data, start=iso(START), end=iso(REFERENCE_END))
+    yamlio.write_atomic(out / "replay.md", replay_report.to_markdown(reference, plan))
+    lines.append(f"wrote {out / 'replay.md'}: every check replayed over the reference weeks")
+    lines.extend("  " + line for line in replay_report.summary_lines(reference))
+    last = run_replay(plan_path, baseline, data, start=iso(REFERENCE_END), end=iso(CHANGE + 32 * 3600))
+    found = detect(last, plan, CHANGE)
+    yamlio.write_atomic(out / "replay-change.md", replay_report.to_markdown(last, plan))
+    lines.append(f"wrote {out / 'replay-change.md'}: the week the frame gate was retuned ({format_time(CHANGE)})")
+    for c in sorted(found, key=lambda c: c.detection_delay_s or 0)[:5]:
+        lines.append(f"  first critical: {c.id} after {replay_report.duration_words(c.detection_delay_s)}")
+    if last.attribution:
+        lines.append(f"  attribution at {format_time(last.attribution_at)} names: "
+                     + ", ".join(g["origin"] for g in last.attribution))
     cmd = " ".join(f"--data {k}={v}" for k, v in data.items())
     lines.append(f"check again: stagewatch check {plan_path} --baseline {baseline} {cmd}")
     return result, lines

@@ -224,8 +224,10 @@ def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any]) -> Non
         if value > current:
             metric[level] = value
             raised.append(f"{level} {current:g} -> {value:g}")
-    if metric.get("warn") is not None and metric.get("critical") is not None and metric["warn"] > metric["critical"]:
-        metric["warn"] = metric["critical"]
+    if metric.get("warn") is not None and metric.get("critical") is not None and metric["warn"] >= metric["critical"]:
+        # The ticket budget needs a warn level as high as the critical one: a warn would only ever fire with it.
+        metric["warn"] = None
+        raised.append("warn dropped (it would need to sit at or above critical)")
     period = found.get("period", {})
     note = {"period": f"{period.get('from')} to {period.get('to')}", "day_blocks": fitted["blocks"],
             "windows": fitted["windows"], "dispersion": fitted["dispersion"],

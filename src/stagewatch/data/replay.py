@@ -213,7 +213,6 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
 def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start: str, end: str,
                cadence: str = "tumbling", time_column: str = contract.TIME_COLUMN,
                injection: str | None = None, progress: Callable[[str], None] | None = None) -> ReplayResult:
-    from stagewatch.data.attribution import attribute
     from stagewatch.plan import load_plan
 
     if cadence not in CADENCES:
@@ -252,37 +251,47 @@ def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start
                           planned_pages=budget.get("expected_false_pages_per_week"),
                           planned_tickets=budget.get("expected_false_tickets_per_week"), injection=change)
     if change:
-        _detection(result, plan, attribute)
+        _detection(result, plan)
     return result
 
 
-def _detection(result: ReplayResult, plan: dict[str, Any], attribute: Callable) -> None:
-    """Delay from the injected change to each check's first critical firing, and who attribution names then."""
+def _detection(result: ReplayResult, plan: dict[str, Any]) -> None:
     change = result.injection
     assert change is not None
+    detect(result, plan, change.at, {c.id for c in affected(result, plan)})
+
+
+def detect(result: ReplayResult, plan: dict[str, Any], at: float, watched: set[str] | None = None
+           ) -> list[CheckReplay]:
+    """Delay from a change at ``at`` to each check's first critical firing; attribution at the first one among
+    ``watched`` (every check when None). Returns the checks that fired critical after ``at``."""
+    from stagewatch.data.attribution import attribute
+
     first_any = None
-    watched = {c.id for c in affected(result, plan)}
+    fired = []
     for c in result.checks:
-        after = (c.times >= change.at) & (c.levels == 2)
+        after = (c.times >= at) & (c.levels == 2)
         if after.any():
             c.first_critical_after = float(c.times[after][0])
-            c.detection_delay_s = c.first_critical_after - change.at
-            if c.id in watched and (first_any is None or c.first_critical_after < first_any):
+            c.detection_delay_s = c.first_critical_after - at
+            fired.append(c)
+            if (watched is None or c.id in watched) and (first_any is None or c.first_critical_after < first_any):
                 first_any = c.first_critical_after
     if first_any is None:
-        return
+        return fired
+    metrics = {m["id"]: m for ms in contract.checks_by_stage(plan).values() for m in ms}
     rows = []
     for c in result.checks:
         upto = c.times <= first_any
         if not upto.any():
             continue
-        level = int(c.levels[upto][-1])
-        metric = next(m for ms in contract.checks_by_stage(plan).values() for m in ms if m["id"] == c.id)
+        metric = metrics[c.id]
         rows.append(CheckRow(id=c.id, stage=c.stage, layer=metric["layer"], statistic=metric["statistic"],
-                             window=c.window, verdict=("ok", "warn", "critical")[level],
+                             window=c.window, verdict=("ok", "warn", "critical")[int(c.levels[upto][-1])],
                              columns=contract.columns_of(metric["reads"]), edge=metric.get("edge")))
     result.attribution = attribute(plan, rows)
     result.attribution_at = first_any
+    return fired
 
 
 def affected(result: ReplayResult, plan: dict[str, Any]) -> list[CheckReplay]:

@@ -10,7 +10,7 @@ import numpy as np
 
 from stagewatch.data.attribution import CAVEAT
 from stagewatch.data.replay import ReplayResult, affected, duration_words
-from stagewatch.data.report import attribution_lines, fmt
+from stagewatch.data.report import attribution_lines, fmt, make_console
 from stagewatch.data.sources import format_time
 
 DAY = 86400.0
@@ -128,7 +128,7 @@ def print_table(result: ReplayResult, plan: dict[str, Any], console: Any = None)
     from rich.markup import escape
     from rich.table import Table
 
-    console = console or Console(highlight=False)
+    console = console or make_console()
     for line in summary_lines(result):
         console.print(line, markup=False, style="bold red" if "OVER BUDGET" in line else None)
     wide = console.width >= 110

@@ -101,31 +101,52 @@ def _footer(result: CheckResult) -> str:
     return "; ".join(notes)
 
 
+def make_console() -> Any:
+    """A rich console on stdout: the terminal's width on a terminal, 120 columns into a file or a pipe."""
+    import sys
+
+    from rich.console import Console
+
+    return Console(highlight=False, width=None if sys.stdout.isatty() else 120)
+
+
 def print_table(result: CheckResult, console: Any = None, only_alerts: bool = False) -> None:
+    from rich import box
     from rich.console import Console
     from rich.markup import escape
     from rich.table import Table
 
-    console = console or Console(highlight=False)
-    table = Table(title=summary_line(result), title_justify="left", show_lines=False)
+    console = console or make_console()
+    wide = console.width >= 120
+    table = Table(title=summary_line(result), title_justify="left", show_lines=False, box=box.SIMPLE_HEAD,
+                  show_edge=False, pad_edge=False)
     table.add_column("stage / check", no_wrap=True)
     table.add_column("verdict", no_wrap=True)
     table.add_column("value", justify="right", no_wrap=True)
     table.add_column("warn / crit", justify="right", no_wrap=True)
     table.add_column("n", justify="right", no_wrap=True)
-    table.add_column("what moved", overflow="fold", ratio=1)
+    if wide:
+        table.add_column("what moved", overflow="fold", ratio=1)
+    moved: list[tuple[str, str]] = []
     stage = None
     for r in result.rows:
         if only_alerts and r.verdict == "ok":
             continue
         if r.stage != stage:
             stage = r.stage
-            table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", "")
+            table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", *([""] if wide else []))
         name = r.id.split(".", 1)[1] if r.id.startswith(r.stage + ".") else r.id
+        words = r.words if r.verdict != "ok" else ""
         table.add_row(f"  {escape(name)}", f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", fmt(r.value),
                       _threshold(r.warn, r.critical), "" if r.n is None else f"{r.n:,}",
-                      escape(r.words) if r.verdict != "ok" else "")
+                      *([escape(words)] if wide else []))
+        if words and not wide:
+            moved.append((r.id, words))
     console.print(table, markup=True)
+    if moved:
+        console.print("What moved:", markup=False, style="bold")
+        for check, words in moved:
+            console.print(f"  {check}: {words}", markup=False)
     for line in attribution_lines(result):
         console.print(line, markup=False)
     footer = _footer(result)
