@@ -37,6 +37,7 @@ check: install
 
 bench: install
 	$(BIN)/python benchmarks/bench_plan.py
+	$(BIN)/python benchmarks/bench_replay.py
 
 clean:
 	rm -rf $(VENV) stagewatch-demo build dist .pytest_cache
