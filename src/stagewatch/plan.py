@@ -28,15 +28,16 @@ STATUSES = ("proposed", "accepted", "rejected", "stale")
 # Fields a reviewer edits; the fingerprint covers exactly these.
 EDITABLE = ("status", "measure", "statistic", "params", "unit", "window", "reference", "warn", "critical",
             "direction", "severity", "catches", "why", "note")
-METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "reads", "statistic",
+METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "reads", "sequential", "statistic",
                "params", "unit", "window", "reference", "warn", "critical", "direction", "severity", "catches",
                "why", "ml_test_score", "on_labels", "review", "note", "sizing", "fingerprint")
 
 
 def fingerprint(metric: dict[str, Any]) -> str:
     fields = {k: metric.get(k) for k in EDITABLE}
-    if "reads" in metric:  # plans written before the log contract have no reads: their fingerprints still hold
-        fields["reads"] = metric["reads"]
+    for key in ("reads", "sequential"):  # keys added later: plans without them keep their fingerprints
+        if key in metric:
+            fields[key] = metric[key]
     payload = json.dumps(fields, sort_keys=True, default=str)
     return hashlib.sha256(payload.encode()).hexdigest()[:12]
 

@@ -12,7 +12,7 @@ from functools import reduce
 from typing import Any, Callable
 
 from stagewatch import durations, stats
-from stagewatch.data import contract, scan, sources
+from stagewatch.data import contract, scan, sequential, sources
 from stagewatch.data.baseline import hour_of_week, load_baseline
 from stagewatch.data.measures import Measure
 from stagewatch.errors import StagewatchError
@@ -210,8 +210,35 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
             row.detail["unseen_values"] = scan.values_not_in(con, source, measure.column or "",
                                                              ref.get("categories_seen", []), start, end, UNSEEN_LIMIT)
         rows.append(row)
+        cusum = sequential.setup(metric, ref, stage_ref)
+        if cusum is not None:
+            rows.append(_cusum_row(con, source, r, cusum, first_ts, at))
     order = {m["id"]: i for i, m in enumerate(metrics)}
-    return sorted(rows, key=lambda r: order[r.id])
+    return sorted(rows, key=lambda r: (order[r.id.split("#")[0]], r.id))
+
+
+def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_ts: float | None,
+               at: float) -> CheckRow:
+    """The CUSUM of a share from the start of the log to ``at``, grouped by hour."""
+    import numpy as np
+
+    from stagewatch import stats
+
+    keys = r.aggregates()
+    start = (first_ts if first_ts is not None else at) - 1.0
+    buckets = scan.run(con, source, keys, start=start, end=at, step=3600.0)
+    count = int(math.ceil((at - start) / 3600.0))
+    order = sorted((b for b in buckets if 0 <= b < count), reverse=True)
+    matches = np.array([buckets[b][f"{r.metric['id']}#matches"] for b in order])
+    n = np.array([buckets[b][f"{r.metric['id']}#n"] for b in order])
+    path, _ = stats.binomial_cusum(matches, n, cusum.p0, cusum.p1)
+    value = float(path[-1]) if path.size else 0.0
+    v = "insufficient" if not n.sum() else ("critical" if value >= cusum.h else "ok")
+    row = _row(r.metric, source.stage, "sequential", v, value=value, n=int(n.sum()), m=r.ref.get("n"),
+               words=cusum.words())
+    row.id = f"{r.metric['id']}#cusum"
+    row.statistic, row.warn, row.critical, row.direction = "cusum", None, cusum.h, "above"
+    return row
 
 
 def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_column: str = contract.TIME_COLUMN,

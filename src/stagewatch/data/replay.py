@@ -18,7 +18,7 @@ import numpy as np
 from scipy import stats as st
 
 from stagewatch import durations
-from stagewatch.data import contract, inject, scan, sources
+from stagewatch.data import contract, inject, scan, sequential, sources
 from stagewatch.data.baseline import load_baseline
 from stagewatch.data.check import CheckRow, Runnable, expected_rows, min_samples, prepare
 from stagewatch.errors import StagewatchError
@@ -207,7 +207,33 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
                                weeks=weeks, planned_critical_per_week=planned_crit, planned_warn_per_week=planned_warn,
                                verdict=verdict, factor=None if factor is None else round(factor, 3),
                                times=times, levels=levels, values=values, samples=n, reference_samples=m))
+        cusum = sequential.setup(r.metric, r.ref, stage_ref)
+        if cusum is not None:
+            out.append(_replay_cusum(r, source.stage, cusum, matrix, column, ends, start, end))
     return out
+
+
+def _replay_cusum(r: Runnable, stage: str, cusum: Any, matrix: np.ndarray, column: dict[str, int],
+                  ends: np.ndarray, start: float, end: float) -> CheckReplay:
+    """The sequential rule of a share, item counts grouped by the replay's buckets, restarted after each alarm."""
+    from stagewatch import stats
+
+    matches = matrix[:, column[f"{r.metric['id']}#matches"]]
+    n = matrix[:, column[f"{r.metric['id']}#n"]]
+    path, alarm = stats.binomial_cusum(matches, n, cusum.p0, cusum.p1, cusum.h)
+    keep = ends > start
+    times, levels = ends[keep], np.where(alarm[keep], 2, 0)
+    weeks = (end - start) / WEEK
+    planned = cusum.items_per_week / cusum.arl0_items
+    fired = int(alarm[keep].sum())
+    windows = (end - start) / (cusum.arl0_items / cusum.items_per_week * WEEK) * MIN_WINDOWS  # run lengths seen
+    verdict, factor = _verdict(fired, planned, weeks, windows)
+    return CheckReplay(id=f"{r.metric['id']}#cusum", stage=stage,
+                       severity=r.metric.get("severity", "ticket"), window="sequential", evaluations=int(keep.sum()),
+                       warn_firings=0, critical_firings=fired, episodes=fired, insufficient=0, weeks=weeks,
+                       planned_critical_per_week=round(planned, 6), planned_warn_per_week=None, verdict=verdict,
+                       factor=None if factor is None else round(factor, 3), times=times, levels=levels,
+                       values=path[keep], samples=n[keep], reference_samples=r.ref.get("n"))
 
 
 def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start: str, end: str,
@@ -285,7 +311,7 @@ def detect(result: ReplayResult, plan: dict[str, Any], at: float, watched: set[s
         upto = c.times <= first_any
         if not upto.any():
             continue
-        metric = metrics[c.id]
+        metric = metrics[c.id.split("#")[0]]
         rows.append(CheckRow(id=c.id, stage=c.stage, layer=metric["layer"], statistic=metric["statistic"],
                              window=c.window, verdict=("ok", "warn", "critical")[int(c.levels[upto][-1])],
                              columns=contract.columns_of(metric["reads"]), edge=metric.get("edge")))
@@ -304,8 +330,8 @@ def affected(result: ReplayResult, plan: dict[str, Any]) -> list[CheckReplay]:
     for c in result.checks:
         if c.stage != change.stage:
             continue
-        cols = contract.columns_of(reads.get(c.id, {}))
-        if change.column in cols or (change.kind == "volume" and reads.get(c.id, {}).get("condition") == "rows"):
+        own = reads.get(c.id.split("#")[0], {})
+        if change.column in contract.columns_of(own) or (change.kind == "volume" and own.get("condition") == "rows"):
             out.append(c)
     return out
 
