@@ -56,7 +56,7 @@ def _render(args: argparse.Namespace) -> int:
     from stagewatch.render import render
 
     plan, _ = load_plan(args.plan)
-    for path in render(plan, args.output):
+    for path in render(plan, args.output, inputs=[args.plan]):
         print(f"wrote {path}")
     return EXIT_OK
 

@@ -2,8 +2,8 @@
 
 from __future__ import annotations
 
+import hashlib
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterable
@@ -12,6 +12,7 @@ import jsonschema
 import yaml
 
 from stagewatch.errors import StagewatchError
+from stagewatch.safewrite import Snapshot, safe_write
 
 
 @dataclass
@@ -21,6 +22,11 @@ class Document:
     path: str
     data: Any
     root: yaml.Node | None
+    digest: str | None = None  # SHA-256 of the bytes read, for the check before a file is replaced
+
+    def snapshot(self) -> Snapshot:
+        """What this file held when it was read, for ``write_atomic(..., expected=...)``."""
+        return Snapshot(os.path.realpath(self.path), self.digest)
 
     def line_of(self, keys: Iterable[Any]) -> int | None:
         node = self.root
@@ -88,7 +94,8 @@ def parse(text: str, path: str) -> Document:
 def load(path: str | os.PathLike[str]) -> Document:
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        raw = p.read_bytes()
+        text = raw.decode("utf-8")
     except FileNotFoundError:
         raise StagewatchError("no such file", file=str(p)) from None
     except IsADirectoryError:
@@ -97,7 +104,9 @@ def load(path: str | os.PathLike[str]) -> Document:
         raise StagewatchError("this file is not UTF-8 text", file=str(p)) from None
     except OSError as exc:
         raise StagewatchError(f"cannot read this file: {exc.strerror}", file=str(p)) from None
-    return parse(text, str(p))
+    doc = parse(text, str(p))
+    doc.digest = hashlib.sha256(raw).hexdigest()
+    return doc
 
 
 def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
@@ -158,29 +167,7 @@ def dump(data: Any) -> str:
     return yaml.dump(data, Dumper=_Dumper, sort_keys=False, default_flow_style=False, width=110, allow_unicode=True)
 
 
-def write_atomic(path: str | os.PathLike[str], text: str) -> None:
-    """Write ``text`` to ``path`` so that a reader sees the old file or the new one, never half of either."""
-    target = Path(path)
-    if target.is_dir():
-        raise StagewatchError("this is a directory; a file name is needed here", file=str(target))
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    except OSError as exc:
-        raise StagewatchError(f"cannot write here: {exc.strerror}", file=str(target)) from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
-        if target.exists():
-            os.chmod(tmp, target.stat().st_mode & 0o777)
-        else:
-            os.chmod(tmp, 0o644)
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+def write_atomic(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str | os.PathLike[str]] = (),
+                 expected: Snapshot | None = None) -> None:
+    """Write ``text`` to ``path`` through :func:`stagewatch.safewrite.safe_write` (the one write path)."""
+    safe_write(path, text, inputs=inputs, expected=expected)
