@@ -277,7 +277,30 @@ def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
     yamlio.validate(doc, schema("plan"), validator("plan"))
     pipeline_of(doc.data, doc)  # the description part, with its own schema and graph checks
     _check_metric_ids(doc)
+    _check_thresholds(doc)
     return doc.data, doc
+
+
+def _check_thresholds(doc: yamlio.Document) -> None:
+    """Thresholds of drift statistics are sizes of change (see DEVELOPERS.md), so never negative; only fixed
+    limits (``level``) read as levels. The schema bounds the numbers; this is the rule it cannot express."""
+    for metric_id, where in _metric_places(doc.data):
+        metric = _at(doc.data, where[:-1])
+        if metric.get("statistic") == "level":
+            continue
+        for key in ("warn", "critical"):
+            value = metric.get(key)
+            if value is not None and value < 0:
+                raise StagewatchError(f"metric '{metric_id}': {key} {value:g} is negative, but a "
+                                      f"{metric.get('statistic')} threshold is a size of change",
+                                      file=doc.path, line=doc.line_of((*where[:-1], key)),
+                                      expected="a threshold of 0 or more (the direction key says which way)")
+
+
+def _at(data: Any, keys: tuple[Any, ...]) -> Any:
+    for key in keys:
+        data = data[key]
+    return data
 
 
 def _metric_places(plan: dict[str, Any]) -> list[tuple[str, tuple[Any, ...]]]:

@@ -210,7 +210,10 @@ def _signal_tests(sig: Signal, metric: dict[str, Any], name: str, levels: list[t
     quiet_time = durations.format((start - 1) * step)
     for label, value, firing in cases:
         if value is None:
-            raise ValueError(f"cannot simulate a fault of {magnitude:g} for {metric['id']}")
+            raise StagewatchError(f"metric '{metric['id']}': no value of its statistic reaches the threshold "
+                                  f"{magnitude / 1.5:g}, so its alert could never fire",
+                                  expected="a threshold the statistic can reach (a larger volume gives a lower "
+                                  "noise floor), or status: rejected with a note")
         # One series per check: a full window of normal data (the alert must stay quiet), then the fault.
         variant = "quiet while normal, then a fault past every threshold" if label == "fault" else (
             "quiet while normal, then a fault between warn and critical")
@@ -266,7 +269,7 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
     fast = max((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=14.4)
     slow = min((p["burn_rate"] for p in pairs if p["severity"] == "ticket"), default=1.0)
     page_min = min((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=6.0)
-    cases = [("fast burn", min(0.5, fast * budget * 5), list(expected)),
+    cases = [("fast burn", min(0.999, fast * budget * 5), list(expected)),
              ("slow burn", min(0.9, (slow + page_min) / 2 * budget), [lvl for lvl in expected if lvl == "warn"]),
              ("within budget", budget * 0.1, [])]
     for label, ratio, firing in cases:
