@@ -38,9 +38,9 @@ class PipelineGraph:
             seen[stage.id] = index
         clash = first_collision((s.id, i) for i, s in enumerate(pipeline.stages))
         if clash:
-            (first, i), (second, j), output, form = clash
+            (one, i), (other, j), output, form = clash
             raise StagewatchError(
-                f"stage ids '{first}' (line {line('stages', i, 'id')}) and '{second}' (line "
+                f"stage ids '{one}' (line {line('stages', i, 'id')}) and '{other}' (line "
                 f"{line('stages', j, 'id')}) both become '{form}' in {output}", file=path,
                 line=line("stages", j, "id"), expected="stage ids that differ in more than _ and -")
         graph = nx.DiGraph()

@@ -304,8 +304,9 @@ def _at(data: Any, keys: tuple[Any, ...]) -> Any:
 
 
 def _metric_places(plan: dict[str, Any]) -> list[tuple[str, tuple[Any, ...]]]:
-    out = [(m["id"], ("stages", i, "metrics", j, "id")) for i, s in enumerate(plan["stages"])
-           for j, m in enumerate(s.get("metrics", []))]
+    out: list[tuple[str, tuple[Any, ...]]] = [(m["id"], ("stages", i, "metrics", j, "id"))
+                                              for i, s in enumerate(plan["stages"])
+                                              for j, m in enumerate(s.get("metrics", []))]
     for key in ("pipeline_metrics", "retired_metrics"):
         out += [(m["id"], (key, j, "id")) for j, m in enumerate(plan.get(key, []))]
     return out
