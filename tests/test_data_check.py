@@ -277,3 +277,16 @@ def test_the_installed_command_checks_end_to_end(tmp_path, cold_store):
                            "--window", "all", "--format", "json"], capture_output=True, text=True)
     assert proc.returncode in (0, 1), proc.stderr
     assert json.loads(proc.stdout)["summary"]["critical"] == 0  # the reference against itself
+
+
+def test_outputs_never_land_on_an_input(tmp_path, cold_store, capsys):
+    paths = write_declared_logs(_plan(cold_store), tmp_path / "logs", hours=24 * 13)
+    assert _calibrate(cold_store, paths, tmp_path / "base") == 0
+    before = (tmp_path / "base" / "baseline.json").read_bytes()
+    for target in (str(cold_store), paths["probe"], str(tmp_path / "base" / "baseline.json")):
+        capsys.readouterr()
+        code = main(["check", str(cold_store), "--baseline", str(tmp_path / "base"), *data_args(paths),
+                     "--format", "json", "-o", target])
+        assert code == 2, target
+    assert (tmp_path / "base" / "baseline.json").read_bytes() == before
+    assert yaml.safe_load(cold_store.read_text())["pipeline"] == "cold-store"

@@ -56,7 +56,7 @@ def _render(args: argparse.Namespace) -> int:
     from stagewatch.render import render
 
     plan, _ = load_plan(args.plan)
-    for path in render(plan, args.output):
+    for path in render(plan, args.output, inputs=[args.plan]):
         print(f"wrote {path}")
     return EXIT_OK
 
@@ -130,7 +130,8 @@ def build_parser() -> argparse.ArgumentParser:
                        description="Write DIR/plan.md: summary, Mermaid diagram, per-stage metrics by layer, "
                        "hand-off table and open decisions.")
     p.add_argument("plan", metavar="PLAN.yaml")
-    p.add_argument("-o", "--output", metavar="DIR", required=True, help="directory to write into")
+    p.add_argument("-o", "--output", metavar="DIR", required=True,
+                   help="directory to write into (-: standard output)")
     p.set_defaults(func=_render)
 
     p = sub.add_parser("explain", help="show how one metric's window and thresholds were derived")

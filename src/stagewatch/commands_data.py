@@ -27,12 +27,36 @@ def _progress(total: int) -> Iterator[Callable[[str], None] | None]:
         yield step
 
 
+def _inputs(args: argparse.Namespace, data: dict[str, str]) -> list[str]:
+    """Every file the command reads: outputs may never land on one of them."""
+    import os
+
+    from stagewatch.data.sources import expand
+
+    files = [args.plan] + [p for pattern in data.values() for p in expand(pattern)]
+    baseline = getattr(args, "baseline", None)
+    if baseline:
+        files.append(os.path.join(baseline, "baseline.json"))
+    return files
+
+
+def _guard(target: str | None, inputs: list[str]) -> None:
+    """Refuse a bad output before the scan, not after it."""
+    if target and target != "-":
+        from stagewatch.safewrite import resolve_target
+
+        resolve_target(target, inputs)
+
+
 def _calibrate(args: argparse.Namespace) -> int:
     from stagewatch.data.baseline import calibrate, load_baseline
     from stagewatch.data.sources import parse_data_args
     from stagewatch.errors import EXIT_OK
 
+    import os
+
     data = parse_data_args(args.data)
+    _guard(os.path.join(args.output, "baseline.json"), _inputs(args, data))
     with _progress(len(data)) as step:
         lines = calibrate(args.plan, data, args.output, time_column=args.time_column, start=args.start,
                           end=args.end, progress=step)
@@ -62,6 +86,8 @@ def _check(args: argparse.Namespace) -> int:
     from stagewatch.plan import load_plan
 
     data = parse_data_args(args.data)
+    inputs = _inputs(args, data)
+    _guard(args.output, inputs)
     with _progress(len(data)) as step:
         result = run_check(args.plan, args.baseline, data, time_column=args.time_column, window=args.window,
                            at=args.at, progress=step)
@@ -75,10 +101,10 @@ def _check(args: argparse.Namespace) -> int:
         text = report.to_openmetrics(result, plan.get("pipeline", ""))
     if text is None:
         if args.output:
-            yamlio.write_atomic(args.output, report.to_markdown(result))
+            yamlio.write_atomic(args.output, report.to_markdown(result), inputs=inputs)
         report.print_table(result)
     elif args.output:
-        yamlio.write_atomic(args.output, text)
+        yamlio.write_atomic(args.output, text, inputs=inputs)
         print(f"wrote {args.output}: {report.summary_line(result)}", file=sys.stderr)
     else:
         sys.stdout.write(text)
@@ -93,19 +119,21 @@ def _replay(args: argparse.Namespace) -> int:
     from stagewatch.plan import load_plan
 
     data = parse_data_args(args.data)
+    inputs = _inputs(args, data)
+    _guard(args.output, inputs)
     with _progress(len(data)) as step:
         result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
                             time_column=args.time_column, injection=args.inject, progress=step)
     plan, _ = load_plan(args.plan)
     if args.format == "table":
         if args.output:
-            yamlio.write_atomic(args.output, replay_report.to_markdown(result, plan))
+            yamlio.write_atomic(args.output, replay_report.to_markdown(result, plan), inputs=inputs)
         replay_report.print_table(result, plan)
     else:
         text = (replay_report.to_json(result, plan) if args.format == "json"
                 else replay_report.to_markdown(result, plan))
         if args.output:
-            yamlio.write_atomic(args.output, text)
+            yamlio.write_atomic(args.output, text, inputs=inputs)
             print(f"wrote {args.output}", file=sys.stderr)
         else:
             sys.stdout.write(text)

@@ -9,6 +9,8 @@ _PATTERN = re.compile(r"^([1-9][0-9]*)([smhdw])$")
 PATTERN = _PATTERN.pattern
 HOUR = 3600.0
 WEEK = 604800.0
+MAX_SECONDS = 730 * 86400  # two years: the longest window, reference, label delay or SLO period a plan may hold
+MAX_TEXT = "730d (two years)"
 
 
 def parse(text: str) -> int:

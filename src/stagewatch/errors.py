@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from stagewatch.escape import terminal
+
 # Exit codes, documented in the README.
 EXIT_OK = 0
 EXIT_FINDINGS = 1  # lint findings; warn, insufficient or not-measured data checks
@@ -38,4 +40,5 @@ class StagewatchError(Exception):
         if self.file:
             where = f"{self.file}:{self.line}: " if self.line else f"{self.file}: "
         tail = f" (expected: {self.expected})" if self.expected else ""
-        return f"{where}{self.message}{tail}"
+        # Messages quote what the user wrote: escape codes and bidi overrides are shown, not obeyed.
+        return terminal(f"{where}{self.message}{tail}")

@@ -5,6 +5,7 @@ from __future__ import annotations
 from typing import Any
 
 from stagewatch.errors import StagewatchError
+from stagewatch.escape import terminal
 from stagewatch.plan import all_metrics
 
 
@@ -46,7 +47,7 @@ def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
         lines.append(f"  review: {m['review']}")
     if m.get("note"):
         lines.append(f"  note:   {m['note']}")
-    return "\n".join(lines)
+    return terminal("\n".join(lines))  # escape codes and bidi overrides in a plan's text are shown, not obeyed
 
 
 def _th(value: Any) -> str:

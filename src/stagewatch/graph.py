@@ -10,6 +10,7 @@ from dataclasses import dataclass
 import networkx as nx
 
 from stagewatch.errors import StagewatchError
+from stagewatch.names import first_collision
 from stagewatch.spec import Pipeline
 from stagewatch.yamlio import Document
 
@@ -35,6 +36,13 @@ class PipelineGraph:
                     f"stage id '{stage.id}' is used twice (stages {seen[stage.id] + 1} and {index + 1})",
                     file=path, line=line("stages", index, "id"), expected="a unique id per stage")
             seen[stage.id] = index
+        clash = first_collision((s.id, i) for i, s in enumerate(pipeline.stages))
+        if clash:
+            (one, i), (other, j), output, form = clash
+            raise StagewatchError(
+                f"stage ids '{one}' (line {line('stages', i, 'id')}) and '{other}' (line "
+                f"{line('stages', j, 'id')}) both become '{form}' in {output}", file=path,
+                line=line("stages", j, "id"), expected="stage ids that differ in more than _ and -")
         graph = nx.DiGraph()
         graph.add_nodes_from(s.id for s in pipeline.stages)
         for index, stage in enumerate(pipeline.stages):

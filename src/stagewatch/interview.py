@@ -12,13 +12,14 @@ import argparse
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable
+from typing import Any, Callable, Sequence
 
 from stagewatch import durations, spec, yamlio
 from stagewatch.errors import EXIT_INTERRUPTED, EXIT_OK, StagewatchError
 from stagewatch.graph import PipelineGraph
 from stagewatch.lint import lint_document
 from stagewatch.plan import all_metrics, compose, dump, load_plan
+from stagewatch.safewrite import Snapshot, resolve_target
 
 DRAFT_VERSION = 1
 KINDS = ["learned", "rule-based", "source"]
@@ -112,7 +113,7 @@ class Session:
     def ask(self, question: Question) -> Any:
         self.asked.add(question.key)
         if question.key in self.known:
-            value = self.known[question.key]
+            value = _known_answer(question, self.known[question.key])
             if question.validate is not None:
                 problem = question.validate(value)
                 if problem:
@@ -131,6 +132,27 @@ class Session:
 
     def unused(self) -> list[str]:
         return sorted(k for k in self.known if k not in self.asked)
+
+
+def _known_answer(question: Question, value: Any) -> Any:
+    """An answer from a file or a draft, held to the same form the prompt would have produced."""
+    def bad(expected: str) -> StagewatchError:
+        return StagewatchError(f"answer to '{question.key}' ({question.text}): {value!r} is not allowed",
+                               expected=expected)
+
+    if question.kind == "select" and value not in (question.choices or []):
+        raise bad("one of " + ", ".join(map(str, question.choices or [])))
+    if question.kind == "confirm" and not isinstance(value, bool):
+        raise bad("true or false")
+    if question.kind == "checkbox" and not (isinstance(value, list) and all(v in (question.choices or [])
+                                                                             for v in value)):
+        raise bad("a list among " + ", ".join(map(str, question.choices or [])))
+    if question.kind == "text" and question.convert and isinstance(value, str):
+        try:
+            value = question.convert(value)
+        except ValueError as exc:
+            raise bad(str(exc)) from None
+    return value
 
 
 # --- validators -----------------------------------------------------------------------------------------------
@@ -404,14 +426,23 @@ def _restore_gaps(plan: dict[str, Any], findings: list[Any]) -> None:
                     m["status"] = "proposed"
 
 
-def run(session: Session, output: str, existing_plan: str | None = None) -> list[str]:
-    """The whole interview; returns lines telling where the files went."""
+def run(session: Session, output: str, existing_plan: str | None = None, inputs: Sequence[str] = ()) -> list[str]:
+    """The whole interview; returns lines telling where the files went.
+
+    ``inputs`` are files the command read (answers, a draft): never written over. The plan at ``output`` is
+    replaced only if nobody changed it since the interview read it.
+    """
     plan_path = Path(output)
+    sources = [str(p) for p in (*inputs, existing_plan) if p]
+    resolve_target(plan_path, [p for p in sources if p != existing_plan])
+    expected = Snapshot.take(plan_path)
     existing = None
     current_head: dict[str, Any] = {}
     current_stages: list[dict[str, Any]] = []
     if existing_plan:
-        existing, _ = load_plan(existing_plan)
+        existing, existing_doc = load_plan(existing_plan)
+        if existing_doc.snapshot().path == expected.path:
+            expected = existing_doc.snapshot()  # revising the plan in place: merged from what was read
         current_head = {k: v for k, v in existing.items() if k in ("pipeline", "context", "false_alarms_per_week",
                                                                    "owner")}
         current_stages = [{k: v for k, v in st.items() if k not in ("metrics", "downstream_reach")}
@@ -498,16 +529,19 @@ def run(session: Session, output: str, existing_plan: str | None = None) -> list
                               expected="keys as written in a saved draft")
     description_path = plan_path.with_name(plan_path.stem + ".pipeline.yaml")
     if plan_path.exists() and not existing_plan:
-        existing_on_disk, _ = load_plan(str(plan_path))
+        existing_on_disk, disk_doc = load_plan(str(plan_path))
+        expected = disk_doc.snapshot()
         plan = compose(pipeline, existing=_merge_statuses(plan, existing_on_disk))
     text = yamlio.dump(description)
     kept = []
+    resolve_target(description_path, sources)
+    yamlio.write_atomic(plan_path, dump(plan), inputs=[p for p in sources if p != existing_plan],
+                        expected=expected)
     if description_path.exists() and description_path.read_text(encoding="utf-8") != text:
         previous = description_path.with_name(plan_path.stem + ".pipeline.previous.yaml")
         description_path.replace(previous)  # never overwrite what may be a hand-edited description
         kept.append(f"kept the earlier description as {previous}")
-    yamlio.write_atomic(description_path, text)
-    yamlio.write_atomic(plan_path, dump(plan))
+    yamlio.write_atomic(description_path, text, inputs=sources)
     n = len(all_metrics(plan))
     decided = sum(1 for m in all_metrics(plan) if m["status"] != "proposed")
     return [f"wrote {plan_path}: {n} metrics, {decided} decided in this interview",
@@ -552,11 +586,39 @@ def load_answers(path: str) -> dict[str, Any]:
     doc = yamlio.load(path)
     data = doc.data
     if isinstance(data, dict) and "draft_version" in data:
-        return data
-    if not isinstance(data, dict):
+        answers = data.get("answers") or {}
+        if not isinstance(answers, dict):
+            raise StagewatchError("a draft's 'answers' is a mapping of question keys to answers", file=path,
+                                  line=doc.line_of(["answers"]), expected="answers: {pipeline.name: ...}")
+        for key in ("output", "plan"):
+            if data.get(key) is not None and not isinstance(data[key], str):
+                raise StagewatchError(f"a draft's '{key}' is a file name", file=path, line=doc.line_of([key]),
+                                      expected=f"{key}: plan.yaml")
+        data = {**data, "answers": answers}
+    elif not isinstance(data, dict):
         raise StagewatchError("an answers file is a mapping of question keys to answers", file=path, line=1,
                               expected="pipeline.name: my-pipeline")
-    return {"answers": data}
+    else:
+        data = {"answers": data}
+    for key in data["answers"]:
+        if not isinstance(key, str):
+            raise StagewatchError(f"question key {key!r} is not text", file=path,
+                                  expected="keys as written in a saved draft, such as pipeline.name")
+    return data
+
+
+def _from_draft(value: str | None, key: str, draft: str) -> str | None:
+    """A path a draft file names, kept inside the working directory or the draft's own directory (where the
+    interview saves it, beside the plan): a draft is data, and data may be hostile."""
+    if value is None:
+        return None
+    real = Path(value).resolve()
+    if not any(real.is_relative_to(d) for d in (Path.cwd().resolve(), Path(draft).resolve().parent)):
+        raise StagewatchError(f"the draft names '{value}' as its {key}, which is outside the working directory "
+                              "and the draft's directory",
+                              file=draft, expected=f"give that path on the command line to confirm it "
+                              f"({'-o' if key == 'output' else 'PLAN.yaml'})")
+    return value
 
 
 def command(args: argparse.Namespace) -> int:
@@ -565,9 +627,9 @@ def command(args: argparse.Namespace) -> int:
     existing_plan = args.plan
     if args.resume:
         draft = load_answers(args.resume)
-        known.update(draft.get("answers", {}))
-        output = output or draft.get("output")
-        existing_plan = existing_plan or draft.get("plan")
+        known.update(draft["answers"])
+        output = output or _from_draft(draft.get("output"), "output", args.resume)
+        existing_plan = existing_plan or _from_draft(draft.get("plan"), "plan", args.resume)
     if args.answers:
         known.update(load_answers(args.answers)["answers"])
     output = output or existing_plan or "plan.yaml"
@@ -579,7 +641,7 @@ def command(args: argparse.Namespace) -> int:
     session = Session(known, interactive=interactive)
     draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
     try:
-        lines = run(session, output, existing_plan)
+        lines = run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
     except (Interrupted, KeyboardInterrupt):  # at a prompt or while the plan is being composed
         save_draft(draft_path, session, output, existing_plan)
         print(f"\nstopped; your answers are saved in {draft_path}\n"

@@ -18,6 +18,7 @@ from stagewatch.data import contract
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
+from stagewatch.names import first_collision
 from stagewatch.resources import schema, validator
 from stagewatch.spec import Pipeline
 
@@ -323,7 +324,59 @@ def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
                               expected="a file written by `stagewatch propose`")
     yamlio.validate(doc, schema("plan"), validator("plan"))
     pipeline_of(doc.data, doc)  # the description part, with its own schema and graph checks
+    _check_metric_ids(doc)
+    _check_thresholds(doc)
     return doc.data, doc
+
+
+def _check_thresholds(doc: yamlio.Document) -> None:
+    """Thresholds of drift statistics are sizes of change (see DEVELOPERS.md), so never negative; only fixed
+    limits (``level``) read as levels. The schema bounds the numbers; this is the rule it cannot express."""
+    for metric_id, where in _metric_places(doc.data):
+        metric = _at(doc.data, where[:-1])
+        if metric.get("statistic") == "level":
+            continue
+        for key in ("warn", "critical"):
+            value = metric.get(key)
+            if value is not None and value < 0:
+                raise StagewatchError(f"metric '{metric_id}': {key} {value:g} is negative, but a "
+                                      f"{metric.get('statistic')} threshold is a size of change",
+                                      file=doc.path, line=doc.line_of((*where[:-1], key)),
+                                      expected="a threshold of 0 or more (the direction key says which way)")
+
+
+def _at(data: Any, keys: tuple[Any, ...]) -> Any:
+    for key in keys:
+        data = data[key]
+    return data
+
+
+def _metric_places(plan: dict[str, Any]) -> list[tuple[str, tuple[Any, ...]]]:
+    out: list[tuple[str, tuple[Any, ...]]] = [(m["id"], ("stages", i, "metrics", j, "id"))
+                                              for i, s in enumerate(plan["stages"])
+                                              for j, m in enumerate(s.get("metrics", []))]
+    for key in ("pipeline_metrics", "retired_metrics"):
+        out += [(m["id"], (key, j, "id")) for j, m in enumerate(plan.get(key, []))]
+    return out
+
+
+def _check_metric_ids(doc: yamlio.Document) -> None:
+    """Refuse a plan where two metrics share an id, or ids that become one alert name: a merge would keep only
+    one of them, and a person's edits may be in the other."""
+    places = _metric_places(doc.data)
+    first_line: dict[str, int | None] = {}
+    for metric_id, where in places:
+        line = doc.line_of(where)
+        if metric_id in first_line:
+            raise StagewatchError(f"metric id '{metric_id}' appears twice (lines {first_line[metric_id]} and {line})",
+                                  file=doc.path, line=line, expected="each metric id once; merge the two by hand")
+        first_line[metric_id] = line
+    clash = first_collision(places)
+    if clash:
+        (first, w1), (second, w2), output, form = clash
+        raise StagewatchError(f"metric ids '{first}' (line {doc.line_of(w1)}) and '{second}' (line "
+                              f"{doc.line_of(w2)}) both become '{form}' in {output}", file=doc.path,
+                              line=doc.line_of(w2), expected="metric ids that differ in more than _ and -")
 
 
 PLAN_ONLY_KEYS = ("plan_version", "pipeline_metrics", "retired_metrics", "budget")

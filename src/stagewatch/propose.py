@@ -3,12 +3,12 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 from stagewatch import plan as plan_mod
 from stagewatch import spec, yamlio
 from stagewatch.catalog import load_catalog
+from stagewatch.safewrite import STDOUT, Snapshot, resolve_target
 
 
 @dataclass
@@ -76,11 +76,18 @@ def report(path: str, before: dict[str, Any] | None, after: dict[str, Any]) -> M
 def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None = None,
             baseline_dir: str | None = None) -> tuple[str, MergeReport | None]:
     """Compose (and merge) the plan; returns its text and, when written to a file, what changed."""
+    target = plan_path if plan_path and plan_path != STDOUT else None
+    if target:  # refuse a bad target before the work, not after it
+        resolve_target(target, [pipeline_path])
     pipeline = spec.load_pipeline(pipeline_path)
     rules = load_catalog(catalog_dir)
     existing = None
-    if plan_path and Path(plan_path).exists():
-        existing, _ = plan_mod.load_plan(plan_path)
+    snapshot = None
+    if target:
+        snapshot = Snapshot.take(target)
+        if snapshot.digest is not None:
+            existing, doc = plan_mod.load_plan(target)
+            snapshot = doc.snapshot()  # the bytes the merge starts from
     found = None
     if baseline_dir:
         from stagewatch.data.baseline import load_thresholds
@@ -88,7 +95,8 @@ def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None =
         found = load_thresholds(baseline_dir, pipeline.name)
     composed = plan_mod.compose(pipeline, rules, existing, found)
     text = plan_mod.dump(composed)
-    if not plan_path or plan_path == "-":
+    if not target:
         return text, None
-    yamlio.write_atomic(plan_path, text)
-    return text, report(plan_path, existing, composed)
+    # Replaced only if nobody changed the plan while it was merged (another propose, an editor's save).
+    yamlio.write_atomic(target, text, inputs=[pipeline_path], expected=snapshot)
+    return text, report(target, existing, composed)

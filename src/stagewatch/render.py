@@ -1,20 +1,21 @@
 """Render a plan to Markdown for code review (summary, Mermaid diagram, per-stage metrics, cascade, open decisions).
 
-Everything a person wrote (descriptions, notes, names) is escaped for the place it lands: Markdown table cells,
-Mermaid labels. Templates live in ``templates/``.
+Everything a person wrote (descriptions, notes, names) goes through the helper of :mod:`stagewatch.escape` for the
+place it lands: Markdown text and table cells, code spans, Mermaid labels. Templates live in ``templates/``.
 """
 
 from __future__ import annotations
 
-import re
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import jinja2
 
-from stagewatch import yamlio
+from stagewatch.escape import markdown_cell, markdown_code, markdown_text, mermaid_label
+from stagewatch.names import mermaid_id
 from stagewatch.plan import all_metrics
 from stagewatch.resources import data_dir
+from stagewatch.safewrite import STDOUT, resolve_target, safe_write
 
 LAYERS = ("software", "input", "output")
 STATISTIC_NAMES = {
@@ -23,32 +24,8 @@ STATISTIC_NAMES = {
 }
 
 
-def md_cell(value: Any) -> str:
-    """Text safe inside one Markdown table cell: no pipes, no line breaks, no raw HTML."""
-    text = "" if value is None else str(value)
-    text = text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
-    text = text.replace("|", "\\|").replace("`", "&#96;")
-    return re.sub(r"\s+", " ", text).strip()
-
-
-def md_text(value: Any) -> str:
-    """Free text in a paragraph: raw HTML neutralised, lines joined."""
-    text = "" if value is None else str(value)
-    text = text.replace("&", "&amp;").replace("<", "&lt;").replace(">", "&gt;")
-    return re.sub(r"\s+", " ", text).strip()
-
-
-def mermaid_id(value: str) -> str:
-    return "s_" + re.sub(r"[^A-Za-z0-9_]", "_", value)
-
-
-def mermaid_label(value: Any) -> str:
-    """A label for use inside ``["..."]``: quotes and brackets become Mermaid entity codes."""
-    text = re.sub(r"\s+", " ", "" if value is None else str(value)).strip()
-    for raw, code in (("#", "#35;"), ('"', "#quot;"), ("<", "#lt;"), (">", "#gt;"), ("[", "#91;"), ("]", "#93;"),
-                      ("{", "#123;"), ("}", "#125;"), ("|", "#124;"), ("`", "#96;")):
-        text = text.replace(raw, code)
-    return text
+md_cell = markdown_cell  # the names the templates and older callers use
+md_text = markdown_text
 
 
 def threshold(value: Any) -> str:
@@ -63,7 +40,8 @@ def environment() -> jinja2.Environment:
                              trim_blocks=True, lstrip_blocks=True, autoescape=False)
     from stagewatch.propose import small
 
-    env.filters.update(small=small, cell=md_cell, text=md_text, mid=mermaid_id, mlabel=mermaid_label, th=threshold,
+    env.filters.update(small=small, cell=markdown_cell, text=markdown_text, code=markdown_code, mid=mermaid_id,
+                       mlabel=mermaid_label, th=threshold,
                        stat=lambda s: STATISTIC_NAMES.get(s, s))
     return env
 
@@ -101,8 +79,13 @@ def render_markdown(plan: dict[str, Any]) -> str:
     return environment().get_template("plan.md.j2").render(**context(plan))
 
 
-def render(plan: dict[str, Any], out_dir: str | Path) -> list[Path]:
-    """Write the review documents for ``plan`` into ``out_dir``; returns the files written."""
+def render(plan: dict[str, Any], out_dir: str | Path, inputs: Sequence[str | Path] = ()) -> list[Path]:
+    """Write the review documents for ``plan`` into ``out_dir`` (``-``: standard output); returns the files
+    written. A file among ``inputs`` (the plan read) is never written over."""
+    if str(out_dir) == STDOUT:
+        safe_write(STDOUT, render_markdown(plan))
+        return []
     target = Path(out_dir) / "plan.md"
-    yamlio.write_atomic(target, render_markdown(plan))
+    resolve_target(target, inputs)
+    safe_write(target, render_markdown(plan), inputs=inputs)
     return [target]

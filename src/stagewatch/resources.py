@@ -33,6 +33,24 @@ def schema(kind: str) -> dict[str, Any]:
 SCHEMA_KINDS = ("pipeline", "plan", "catalog", "checks", "check-result")
 
 
+def _bounded_duration(value: object) -> bool:
+    """Format ``bounded-duration``: a duration, if the value is one, is at most two years."""
+    from stagewatch import durations
+
+    if not durations.is_duration(value):
+        return True
+    return durations.parse(str(value)) <= durations.MAX_SECONDS
+
+
+def format_checker() -> Any:
+    """The formats our schemas use beyond JSON Schema's own."""
+    import jsonschema
+
+    checker = jsonschema.FormatChecker(formats=())
+    checker.checks("bounded-duration")(_bounded_duration)
+    return checker
+
+
 @lru_cache(maxsize=None)
 def validator(kind: str) -> Any:
     """A validator for ``kind`` that resolves references between our schemas without any network."""
@@ -42,4 +60,4 @@ def validator(kind: str) -> Any:
     registry = Registry().with_resources(
         (schema(k)["$id"], Resource.from_contents(schema(k))) for k in SCHEMA_KINDS
         if (_PACKAGE / "schemas" / f"{k}.schema.json").exists())
-    return jsonschema.Draft202012Validator(schema(kind), registry=registry)
+    return jsonschema.Draft202012Validator(schema(kind), registry=registry, format_checker=format_checker())

@@ -11,6 +11,7 @@ from typing import Any
 
 from stagewatch import durations, yamlio
 from stagewatch.errors import StagewatchError
+from stagewatch.names import first_collision
 from stagewatch.resources import schema
 
 # Rule of thumb of the trade (common practice): business and machine data shifts within hours, a large consumer
@@ -152,6 +153,14 @@ def from_document(doc: yamlio.Document) -> Pipeline:
             dupes = sorted({n for n in names if names.count(n) > 1})
             if dupes:
                 raise fail(key, f"field names repeat in {key}: {', '.join(dupes)}", "each field name once")
+            clash = first_collision((n, i) for i, n in enumerate(names))
+            if clash:
+                (first, i), (second, j), output, form = clash
+                raise StagewatchError(
+                    f"stage '{raw['id']}': {key} '{first}' (line {doc.line_of((*where, key, i, 'name'))}) and "
+                    f"'{second}' (line {doc.line_of((*where, key, j, 'name'))}) both become '{form}' in {output}",
+                    file=doc.path, line=doc.line_of((*where, key, j, "name")),
+                    expected="field names that differ in more than _")
             for f_index, f in enumerate(raw.get(key, [])):
                 if "range" in f and f["range"][0] >= f["range"][1]:
                     raise StagewatchError(f"stage '{raw['id']}': field '{f['name']}' range must be [low, high]",

@@ -2,8 +2,9 @@
 
 from __future__ import annotations
 
+import hashlib
+import math
 import os
-import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Iterable
@@ -12,6 +13,7 @@ import jsonschema
 import yaml
 
 from stagewatch.errors import StagewatchError
+from stagewatch.safewrite import Snapshot, safe_write
 
 
 @dataclass
@@ -21,6 +23,11 @@ class Document:
     path: str
     data: Any
     root: yaml.Node | None
+    digest: str | None = None  # SHA-256 of the bytes read, for the check before a file is replaced
+
+    def snapshot(self) -> Snapshot:
+        """What this file held when it was read, for ``write_atomic(..., expected=...)``."""
+        return Snapshot(os.path.realpath(self.path), self.digest)
 
     def line_of(self, keys: Iterable[Any]) -> int | None:
         node = self.root
@@ -42,23 +49,94 @@ class Document:
         return line
 
 
-def _check_duplicate_keys(node: yaml.Node | None, path: str) -> None:
-    if isinstance(node, yaml.MappingNode):
-        seen: dict[str, int] = {}
-        for knode, vnode in node.value:
-            key = str(knode.value)
-            if key in seen:
-                raise StagewatchError(
-                    f"key '{key}' appears twice in the same block (first on line {seen[key]})",
-                    file=path,
-                    line=knode.start_mark.line + 1,
-                    expected="each key once",
-                )
-            seen[key] = knode.start_mark.line + 1
-            _check_duplicate_keys(vnode, path)
-    elif isinstance(node, yaml.SequenceNode):
-        for item in node.value:
-            _check_duplicate_keys(item, path)
+# Limits on what a YAML file may hold. Plans and descriptions are far inside them (a 1,000-stage plan is about
+# 20 MB, 10 levels deep, with no aliases); a file beyond them is hostile or broken, and is stopped with a message
+# before it can take minutes or memory.
+MAX_FILE_BYTES = 128 * 1024 * 1024
+MAX_DEPTH = 64
+MAX_ALIAS_EXPANSION = 100_000  # nodes that aliases add when the document is expanded
+MAX_INTEGER_DIGITS = 18
+DERIVED_KEY = "sizing"
+_INT_TAG = "tag:yaml.org,2002:int"
+_FLOAT_TAG = "tag:yaml.org,2002:float"
+
+
+def _fail(node: yaml.Node, path: str, message: str, expected: str) -> StagewatchError:
+    return StagewatchError(message, file=path, line=node.start_mark.line + 1, expected=expected)
+
+
+def _check_scalar(node: yaml.ScalarNode, path: str, derived: bool) -> None:
+    if node.tag == _INT_TAG:
+        digits = sum(ch.isdigit() for ch in node.value)
+        if digits > MAX_INTEGER_DIGITS:
+            raise _fail(node, path, f"an integer of {digits} digits", f"at most {MAX_INTEGER_DIGITS} digits")
+    elif node.tag == _FLOAT_TAG:
+        text = node.value.replace("_", "").lower()
+        try:
+            finite = math.isfinite(float(text.replace(".inf", "inf").replace(".nan", "nan")))
+        except ValueError:  # YAML 1.1 sexagesimal (1:30.5): finite by construction
+            finite = True
+        if not finite and not (derived and text in (".inf", "+.inf")):
+            raise _fail(node, path, f"'{node.value}' is not a finite number", "a finite number")
+
+
+def _check_tree(root: yaml.Node | None, path: str) -> None:
+    """One pass over the node graph, without recursion: duplicate keys, depth, aliases that refer to themselves
+    or expand too far (a few lines can expand to billions of nodes), integers too long to convert, NaN and infinity
+    (allowed only inside a plan's ``sizing`` blocks, which stagewatch derives and rewrites on every propose: an
+    undetectable change is written as ``.inf`` there).
+
+    Aliases share one node, so each distinct node is checked once and the expanded size is summed, not walked.
+    """
+    if root is None:
+        return
+    expanded: dict[int, int] = {}  # id(node) -> nodes in its expanded subtree
+    open_nodes: set[int] = set()
+    stack: list[tuple[yaml.Node, int, bool, bool]] = [(root, 0, False, False)]
+    while stack:
+        node, depth, closing, derived = stack.pop()
+        key = id(node)
+        children: list[yaml.Node] = []
+        if isinstance(node, yaml.MappingNode):
+            children = [n for pair in node.value for n in pair]
+        elif isinstance(node, yaml.SequenceNode):
+            children = list(node.value)
+        if closing:
+            open_nodes.discard(key)
+            expanded[key] = 1 + sum(expanded[id(c)] for c in children)
+            continue
+        if key in expanded:
+            continue
+        if key in open_nodes:
+            raise _fail(node, path, "an alias refers to a block that contains it", "aliases to finished blocks")
+        if depth > MAX_DEPTH:
+            raise _fail(node, path, f"blocks nested more than {MAX_DEPTH} deep", f"at most {MAX_DEPTH} levels")
+        if isinstance(node, yaml.ScalarNode):
+            _check_scalar(node, path, derived)
+            expanded[key] = 1
+            continue
+        if isinstance(node, yaml.MappingNode):
+            seen: dict[str, int] = {}
+            for knode, _ in node.value:
+                name = str(knode.value)
+                if name in seen:
+                    raise StagewatchError(f"key '{name}' appears twice in the same block (first on line "
+                                          f"{seen[name]})", file=path, line=knode.start_mark.line + 1,
+                                          expected="each key once")
+                seen[name] = knode.start_mark.line + 1
+        open_nodes.add(key)
+        stack.append((node, depth, True, derived))
+        if isinstance(node, yaml.MappingNode):
+            for knode, vnode in reversed(node.value):
+                stack.append((vnode, depth + 1, False, derived or knode.value == DERIVED_KEY))
+                stack.append((knode, depth + 1, False, derived))
+        else:
+            stack.extend((c, depth + 1, False, derived) for c in reversed(children))
+    extra = expanded[id(root)] - len(expanded)
+    if extra > MAX_ALIAS_EXPANSION:
+        raise StagewatchError(f"aliases expand this document by {extra:.3g} nodes", file=path,
+                              line=root.start_mark.line + 1,
+                              expected=f"aliases that add at most {MAX_ALIAS_EXPANSION:,} nodes")
 
 
 _Loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml when present: the same result, much faster
@@ -70,8 +148,12 @@ def parse(text: str, path: str) -> Document:
         loader = _Loader(text)
         try:
             root = loader.get_single_node()
-            _check_duplicate_keys(root, path)
-            data = loader.construct_document(root) if root is not None else None
+            _check_tree(root, path)
+            try:
+                data = loader.construct_document(root) if root is not None else None
+            except (ValueError, TypeError, OverflowError) as exc:  # a value of a resolved type that cannot be built
+                raise StagewatchError(f"a value cannot be read: {exc}", file=path,
+                                      expected="plain text, numbers, lists and mappings") from None
         finally:
             loader.dispose()
     except yaml.MarkedYAMLError as exc:
@@ -82,13 +164,22 @@ def parse(text: str, path: str) -> Document:
         ) from None
     except yaml.YAMLError as exc:
         raise StagewatchError(f"this is not valid YAML: {exc}", file=path) from None
+    except RecursionError:  # the pure-Python parser, without libyaml, on very deep nesting
+        raise StagewatchError("blocks nested too deep to read", file=path,
+                              expected=f"at most {MAX_DEPTH} levels") from None
     return Document(path=path, data=data, root=root)
 
 
 def load(path: str | os.PathLike[str]) -> Document:
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        if p.stat().st_size > MAX_FILE_BYTES:
+            raise StagewatchError(f"this file is {p.stat().st_size / 2**20:.0f} MiB", file=str(p),
+                                  expected=f"at most {MAX_FILE_BYTES // 2**20} MiB")
+        if not p.is_file() and not p.is_dir():  # a FIFO or a device would block or never end
+            raise StagewatchError("this is not a regular file", file=str(p), expected="a YAML file")
+        raw = p.read_bytes()
+        text = raw.decode("utf-8")
     except FileNotFoundError:
         raise StagewatchError("no such file", file=str(p)) from None
     except IsADirectoryError:
@@ -97,7 +188,9 @@ def load(path: str | os.PathLike[str]) -> Document:
         raise StagewatchError("this file is not UTF-8 text", file=str(p)) from None
     except OSError as exc:
         raise StagewatchError(f"cannot read this file: {exc.strerror}", file=str(p)) from None
-    return parse(text, str(p))
+    doc = parse(text, str(p))
+    doc.digest = hashlib.sha256(raw).hexdigest()
+    return doc
 
 
 def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
@@ -111,6 +204,10 @@ def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
     if validator == "additionalProperties":
         allowed = sorted((error.schema.get("properties") or {}).keys())
         return f"{where}: {error.message}", ("keys among " + ", ".join(allowed)) if allowed else None
+    if validator == "format" and error.validator_value == "bounded-duration":
+        from stagewatch.durations import MAX_TEXT
+
+        return f"{where}: {error.instance!r} is longer than any window or delay stagewatch plans", f"at most {MAX_TEXT}"
     if validator == "pattern":
         return f"{where}: {error.instance!r} has the wrong form", error.schema.get("description") or (
             f"text matching {error.validator_value}"
@@ -122,7 +219,10 @@ def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
 
 def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> None:
     """Raise one StagewatchError for the most relevant schema violation, with its YAML line."""
-    validator = validator or jsonschema.Draft202012Validator(schema)
+    if validator is None:
+        from stagewatch.resources import format_checker
+
+        validator = jsonschema.Draft202012Validator(schema, format_checker=format_checker())
     errors = list(validator.iter_errors(doc.data))
     if not errors:
         return
@@ -158,29 +258,7 @@ def dump(data: Any) -> str:
     return yaml.dump(data, Dumper=_Dumper, sort_keys=False, default_flow_style=False, width=110, allow_unicode=True)
 
 
-def write_atomic(path: str | os.PathLike[str], text: str) -> None:
-    """Write ``text`` to ``path`` so that a reader sees the old file or the new one, never half of either."""
-    target = Path(path)
-    if target.is_dir():
-        raise StagewatchError("this is a directory; a file name is needed here", file=str(target))
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(prefix=f".{target.name}.", suffix=".tmp", dir=target.parent)
-    except OSError as exc:
-        raise StagewatchError(f"cannot write here: {exc.strerror}", file=str(target)) from None
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as handle:
-            handle.write(text)
-            handle.flush()
-            os.fsync(handle.fileno())
-        if target.exists():
-            os.chmod(tmp, target.stat().st_mode & 0o777)
-        else:
-            os.chmod(tmp, 0o644)
-        os.replace(tmp, target)
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except FileNotFoundError:
-            pass
-        raise
+def write_atomic(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str | os.PathLike[str]] = (),
+                 expected: Snapshot | None = None) -> None:
+    """Write ``text`` to ``path`` through :func:`stagewatch.safewrite.safe_write` (the one write path)."""
+    safe_write(path, text, inputs=inputs, expected=expected)

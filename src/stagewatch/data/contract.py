@@ -202,8 +202,7 @@ def _kind_of(metric: dict[str, Any], column: str) -> str:
 
 def log_columns_markdown(plan: dict[str, Any]) -> str:
     """The "log columns" section of instrumentation.md: per stage, the columns its log carries for `check`."""
-    def cell(text: str) -> str:
-        return "`" + str(text).replace("`", "'").replace("|", "\\|").replace("\n", " ") + "`"
+    from stagewatch.escape import markdown_code as cell
 
     lines = ["", "## Log columns", "",
              f"`stagewatch calibrate` and `stagewatch check` read one log per stage: a table with one row per item, "

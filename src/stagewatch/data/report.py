@@ -69,10 +69,9 @@ def _finite(d: dict[str, Any]) -> dict[str, Any]:
 
 
 def _escape_md(text: str) -> str:
-    out = str(text).replace("\\", "\\\\").replace("|", "\\|").replace("\n", " ")
-    for ch in "`*_[]<>#":
-        out = out.replace(ch, "\\" + ch)
-    return out
+    from stagewatch.escape import markdown_cell
+
+    return markdown_cell(text)
 
 
 def to_markdown(result: CheckResult) -> str:

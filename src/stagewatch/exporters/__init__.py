@@ -6,28 +6,30 @@ files and returns one line per file written.
 
 from __future__ import annotations
 
-from typing import Any, Callable, Protocol
+from typing import Any, Protocol, Sequence
 
 from stagewatch.plan import all_metrics, load_plan
 
 
 class Exporter(Protocol):
-    def __call__(self, plan: dict[str, Any], target: str) -> list[str]: ...
+    """Writes ``plan`` to ``target`` through :mod:`stagewatch.safewrite`, never over a file in ``inputs``."""
+
+    def __call__(self, plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]: ...
 
 
-def _prometheus(plan: dict[str, Any], target: str) -> list[str]:
+def _prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
     from stagewatch.exporters.prometheus import export_prometheus
 
-    return export_prometheus(plan, target)
+    return export_prometheus(plan, target, inputs)
 
 
-def _checks(plan: dict[str, Any], target: str) -> list[str]:
+def _checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
     from stagewatch.exporters.checks import export_checks
 
-    return export_checks(plan, target)
+    return export_checks(plan, target, inputs)
 
 
-EXPORTERS: dict[str, Callable[[dict[str, Any], str], list[str]]] = {
+EXPORTERS: dict[str, Exporter] = {
     "prometheus": _prometheus,
     "checks": _checks,
 }
@@ -40,4 +42,4 @@ def live_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
 
 def export(plan_path: str, to: str, target: str) -> list[str]:
     plan, _ = load_plan(plan_path)
-    return EXPORTERS[to](plan, target)
+    return EXPORTERS[to](plan, target, [plan_path])

@@ -3,11 +3,11 @@
 from __future__ import annotations
 
 import json
-from typing import Any
+from typing import Any, Sequence
 
 import jsonschema
 
-from stagewatch import yamlio
+from stagewatch.safewrite import STDOUT, safe_write
 from stagewatch.exporters import live_metrics
 from stagewatch.resources import validator
 
@@ -32,11 +32,14 @@ def checks_document(plan: dict[str, Any]) -> dict[str, Any]:
     return {"checks_version": CHECKS_VERSION, "pipeline": plan["pipeline"], "checks": checks}
 
 
-def export_checks(plan: dict[str, Any], target: str) -> list[str]:
+def export_checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
+    """Write the check configuration to ``target`` (``-``: standard output)."""
     document = checks_document(plan)
     try:
         validator("checks").validate(document)
     except jsonschema.ValidationError as exc:  # our own output must meet our own schema
         raise AssertionError(f"checks export breaks its schema: {exc.message}") from exc
-    yamlio.write_atomic(target, json.dumps(document, indent=2) + "\n")
+    safe_write(target, json.dumps(document, indent=2) + "\n", inputs=inputs)
+    if target == STDOUT:
+        return []
     return [f"wrote {target}: {len(document['checks'])} checks (JSON, schema: `stagewatch schema checks`)"]

@@ -11,12 +11,17 @@ import math
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, Sequence
 
 import networkx as nx
 
 from stagewatch import durations, yamlio
 from stagewatch.data import contract
+from stagewatch.errors import StagewatchError
+from stagewatch.escape import go_template_literal, markdown_code, markdown_text
+from stagewatch.names import alert_name
+from stagewatch.names import receivers as receiver_names
+from stagewatch.safewrite import STDOUT, safe_write_all
 from stagewatch.exporters import live_metrics
 from stagewatch.exporters.signals import (FAMILIES, CounterLevelSignal, Series, ShareSignal, Signal, counter,
                                           signal_for)
@@ -35,22 +40,18 @@ FIRST_RESPONSE = {
 }
 
 
-def alert_name(metric_id: str) -> str:
-    """CamelCase alert name from a metric id: ``frame_gate.output.pass_rate`` -> ``FrameGateOutputPassRate``."""
-    return "".join(part[:1].upper() + part[1:] for part in re.split(r"[^A-Za-z0-9]+", metric_id) if part)
-
-
 def _inert(text: Any) -> str:
-    """Free text for an annotation: Prometheus expands Go templates, so template delimiters are broken up."""
-    return re.sub(r"\s+", " ", str(text or "")).replace("{{", "{ {").replace("}}", "} }").strip()
+    """Free text for an annotation, on one line, as Prometheus shows it after expanding the template."""
+    return re.sub(r"\s+", " ", str(text or "")).strip()
+
+
+def _templated(values: dict[str, str]) -> dict[str, str]:
+    """Label values and annotations as written in a rule: Prometheus expands them as Go templates."""
+    return {key: go_template_literal(value) for key, value in values.items()}
 
 
 def _matcher_value(text: str) -> str:
-    return text.replace("\\", "\\\\").replace('"', '\\"')
-
-
-def _receiver(text: str) -> str:
-    return re.sub(r"[^A-Za-z0-9_.-]+", "-", text).strip("-") or "team"
+    return text.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
 
 
 def _fmt(x: float) -> str:
@@ -151,12 +152,14 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
         rule: dict[str, Any] = {"alert": name, "expr": _compare(value, metric, threshold, sig.level_reading)}
         if sig.for_ != "0s":
             rule["for"] = sig.for_
-        rule["labels"] = _labels(metric, owner, level, severity)
-        rule["annotations"] = _annotations(metric, level, threshold)
+        labels = _labels(metric, owner, level, severity)
+        annotations = _annotations(metric, level, threshold)
+        rule["labels"] = _templated(labels)
+        rule["annotations"] = _templated(annotations)
         group.rules.append(rule)
         group.alerts += 1
         base = {"pipeline": sig.pipeline, "stage": sig.stage, "check": sig.check}
-        expected[level] = {"exp_labels": {**base, **rule["labels"]}, "exp_annotations": rule["annotations"]}
+        expected[level] = {"exp_labels": {**base, **labels}, "exp_annotations": annotations}
     group.cases.extend(_signal_tests(sig, metric, name, levels, expected))
 
 
@@ -208,7 +211,10 @@ def _signal_tests(sig: Signal, metric: dict[str, Any], name: str, levels: list[t
     quiet_time = durations.format((start - 1) * step)
     for label, value, firing in cases:
         if value is None:
-            raise ValueError(f"cannot simulate a fault of {magnitude:g} for {metric['id']}")
+            raise StagewatchError(f"metric '{metric['id']}': no value of its statistic reaches the threshold "
+                                  f"{magnitude / 1.5:g}, so its alert could never fire",
+                                  expected="a threshold the statistic can reach (a larger volume gives a lower "
+                                  "noise floor), or status: rejected with a note")
         # One series per check: a full window of normal data (the alert must stay quiet), then the fault.
         variant = "quiet while normal, then a fault past every threshold" if label == "fault" else (
             "quiet while normal, then a fault between warn and critical")
@@ -254,16 +260,17 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
         annotations["summary"] = _inert(
             f"{metric['id']}: error budget of the {target:g} SLO burning at more than {_fmt(threshold)}x "
             f"({', '.join(p['long_window'] + '/' + p['short_window'] for p in mine)})")
+        labels = _labels(metric, owner, level, severity)
         rule: dict[str, Any] = {"alert": name, "expr": "\n  or ".join(clauses),
-                                "labels": _labels(metric, owner, level, severity), "annotations": annotations}
+                                "labels": _templated(labels), "annotations": _templated(annotations)}
         group.rules.append(rule)
         group.alerts += 1
         expected[level] = {"exp_labels": {"pipeline": pipeline, "stage": stage, "check": metric["id"],
-                                          **rule["labels"]}, "exp_annotations": rule["annotations"]}
+                                          **labels}, "exp_annotations": annotations}
     fast = max((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=14.4)
     slow = min((p["burn_rate"] for p in pairs if p["severity"] == "ticket"), default=1.0)
     page_min = min((p["burn_rate"] for p in pairs if p["severity"] == "page"), default=6.0)
-    cases = [("fast burn", min(0.5, fast * budget * 5), list(expected)),
+    cases = [("fast burn", min(0.999, fast * budget * 5), list(expected)),
              ("slow burn", min(0.9, (slow + page_min) / 2 * budget), [lvl for lvl in expected if lvl == "warn"]),
              ("within budget", budget * 0.1, [])]
     for label, ratio, firing in cases:
@@ -375,13 +382,14 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, An
     receivers = [{"name": "stagewatch-default",
                   "webhook_configs": [{"url": "http://127.0.0.1:9095/stagewatch/default"}]}]
     routes = []
+    receiver_of = receiver_names(owners, reserved=["stagewatch"])  # "stagewatch" would meet stagewatch-page
     for owner in owners:
         child = []
         for severity in ("page", "ticket"):
-            name = f"{_receiver(owner)}-{severity}"
+            name = f"{receiver_of[owner]}-{severity}"
             receivers.append({"name": name, "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{name}"}]})
             child.append({"receiver": name, "matchers": [f'severity="{severity}"']})
-        routes.append({"receiver": f"{_receiver(owner)}-ticket", "matchers": [f'owner="{_matcher_value(owner)}"'],
+        routes.append({"receiver": f"{receiver_of[owner]}-ticket", "matchers": [f'owner="{_matcher_value(owner)}"'],
                        "routes": child})
     for severity in ("page", "ticket"):
         receivers.append({"name": f"stagewatch-{severity}",
@@ -401,7 +409,7 @@ AM_HEADER = ("# Generated by stagewatch: routing by owner and severity, inhibiti
 
 
 def instrumentation_markdown(instr: dict[str, Any]) -> str:
-    lines = [f"# Instrumentation for {instr['pipeline']}", "",
+    lines = [f"# Instrumentation for {markdown_text(instr['pipeline'])}", "",
              "What each stage must emit for the exported rules to work. Every series carries the labels `pipeline` "
              "and `stage`; per-check series also carry `check` (the plan metric id). Reference gauges are "
              "published from calibrated reference data; `stagewatch_check_statistic` by the data checks.", "",
@@ -417,7 +425,7 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
         uses = by_stage.get(stage, [])
         if not uses:
             continue
-        lines += [f"### `{stage}`", "", "| Metric | check | Notes |", "|---|---|---|"]
+        lines += [f"### {markdown_code(stage)}", "", "| Metric | check | Notes |", "|---|---|---|"]
         for name, use in uses:
             notes = []
             if "bins" in use:
@@ -425,17 +433,20 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
             if "bucket_le" in use:
                 notes.append(f"needs bucket le={use['bucket_le']}")
             if "field" in use:
-                notes.append(f"field `{use['field']}`")
+                notes.append(f"field {markdown_code(use['field'])}")
             if "reference_share" in use:
                 notes.append(f"reference share until calibrated: {use['reference_share']:g}")
             check = use["check"] if name not in ("stagewatch_requests_total", "stagewatch_request_errors_total",
                                                  "stagewatch_request_duration_seconds") else "(none)"
-            lines.append(f"| `{name}` | `{check}` | {'; '.join(notes)} |")
+            lines.append(f"| `{name}` | {markdown_code(check)} | {'; '.join(notes)} |")
         lines.append("")
     return "\n".join(lines) + "\n"
 
 
-def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
+def export_prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
+    if target == STDOUT:
+        raise StagewatchError("the Prometheus export is a directory of files and cannot go to standard output",
+                              expected="-o DIR")
     built = build(plan)
     out = Path(target)
     files: dict[Path, str] = {}
@@ -459,8 +470,7 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
                                          + contract.log_columns_markdown(plan))
     example = Path(__file__).with_name("example_exporter.py")
     files[out / "example_exporter.py"] = example.read_text(encoding="utf-8")
-    for path, text in files.items():
-        yamlio.write_atomic(path, text)
+    safe_write_all(files, inputs=inputs)
     alerts = sum(g.alerts for g in built.groups)
     checked = sum(len(t["alert_rule_test"]) for g in built.groups for ts in g.tests().values() for t in ts)
     return [f"wrote {out / 'rules'}/: {sum(1 for g in built.groups if g.rules)} rule groups, {alerts} alerting rules",
