@@ -228,8 +228,11 @@ def test_a_baseline_from_another_plan_or_edited_or_truncated_is_refused(tmp_path
 def test_usage_errors_name_what_was_expected(tmp_path, cold_store, capsys):
     assert main(["calibrate", str(cold_store), "--data", "probe", "-o", str(tmp_path / "b")]) == 2
     assert "STAGE=PATH" in capsys.readouterr().err
-    assert main(["calibrate", str(cold_store), "--data", "nowhere=x.parquet", "-o", str(tmp_path / "b")]) == 2
+    (tmp_path / "x.csv").write_text("timestamp,temp_c\n2026-03-02T00:00:00Z,1\n")
+    assert main(["calibrate", str(cold_store), "--data", f"nowhere={tmp_path / 'x.csv'}", "-o", str(tmp_path / "b")]) == 2
     assert "does not have" in capsys.readouterr().err
+    assert main(["calibrate", str(cold_store), "--data", "probe=x.parquet", "-o", str(tmp_path / "b")]) == 2
+    assert "no such file" in capsys.readouterr().err
     assert main(["calibrate", str(cold_store), "--data", f"probe={tmp_path}/*.parquet", "-o", str(tmp_path / "b")]) == 2
     assert "no file matches" in capsys.readouterr().err
     (tmp_path / "x.txt").write_text("hello")
