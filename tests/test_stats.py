@@ -235,3 +235,47 @@ def test_false_alarm_is_alpha_at_the_floor_for_every_statistic():
                 assert observed > floor, name
             else:
                 assert detectable > floor, name
+
+
+# --- SLO burn-rate pairs for other periods ---------------------------------------------------------------------
+
+def _pairs(period_days):
+    return [(a["severity"], a["long_window_s"] / 60, a["short_window_s"] / 60, a["burn_rate"])
+            for a in stats.burn_rate_alerts(period_days * 86400)]
+
+
+def test_burn_rate_pairs_30_days_are_the_workbook_table():
+    # The Site Reliability Workbook (O'Reilly, 2018), ch. 5, table 5-8, 30-day SLO: page 14.4 over 1h/5m,
+    # page 6 over 6h/30m, ticket 1 over 3d/6h.
+    assert _pairs(30) == [("page", 60, 5, 14.4), ("page", 360, 30, 6.0), ("ticket", 4320, 360, 1.0)]
+
+
+@pytest.mark.parametrize("days,table", [
+    # Derived from table 5-8 with budget consumed = burn rate x long window / period (REFERENCES.md, "SLO alerts
+    # for other periods"): long window = Workbook window x period / 30d, short = 1/12 of it, at least 5m.
+    # 7 days = 10,080 minutes: 2% at 14.4 -> 0.02 x 10080 / 14.4 = 14m; 5% at 6 -> 84m; 10% at 1 -> 1008m (16.8h).
+    (7, [("page", 14, 5, 14.4), ("page", 84, 7, 6.0), ("ticket", 1008, 84, 1.0)]),
+    # 28 days = 40,320 minutes: 0.02 x 40320 / 14.4 = 56m; 0.05 x 40320 / 6 = 336m; 0.10 x 40320 / 1 = 4032m.
+    (28, [("page", 56, 5, 14.4), ("page", 336, 28, 6.0), ("ticket", 4032, 336, 1.0)]),
+])
+def test_burn_rate_pairs_scale_with_the_period(days, table):
+    assert _pairs(days) == table
+
+
+@pytest.mark.parametrize("days", [1, 7, 14, 28, 30, 90, 365])
+def test_every_pair_spends_its_budget_share_and_pages_only_above_burn_rate_1(days):
+    period = days * 86400
+    shares = [0.02, 0.05, 0.10]
+    for alert, share in zip(stats.burn_rate_alerts(period), shares):
+        # Budget consumed = burn rate x long window / period (SRE Workbook, ch. 5).
+        assert alert["burn_rate"] * alert["long_window_s"] / period == pytest.approx(share)
+        assert alert["short_window_s"] <= alert["long_window_s"]
+        if alert["severity"] == "page":
+            assert alert["burn_rate"] > 1
+    assert not stats.pages_within_budget(stats.burn_rate_alerts(period))
+
+
+def test_a_period_too_short_to_page_is_named():
+    # A 3-hour period: 2% of the budget in the 5m shortest window is burn rate 0.02 x 180 / 5 = 0.72.
+    within = stats.pages_within_budget(stats.burn_rate_alerts(3 * 3600))
+    assert [a["burn_rate"] for a in within] == [pytest.approx(0.72)]

@@ -205,10 +205,18 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
         f"{fast['budget_share']:.0%} of the budget), and at {_sig(alerts[1]['burn_rate'], 3)} over "
         f"{durations.format(alerts[1]['long_window_s'])}; opens a ticket at {_sig(slow['burn_rate'], 3)} over "
         f"{durations.format(slow['long_window_s'])} ({slow['budget_share']:.0%}). Both windows of a pair must exceed "
-        f"the rate, so the alert stops soon after the burn does.")
+        f"the rate, so the alert stops soon after the burn does. The windows are the SRE Workbook's 30-day windows "
+        f"scaled to the {durations.format(period_s)} period (whole minutes, at least "
+        f"{durations.format(stats.SHORTEST_SLO_WINDOW_S)}), so each pair spends the same share of the budget.")
     review = None
+    within = stats.pages_within_budget(alerts)
+    if within:
+        review = (f"the {durations.format(period_s)} SLO period is too short for paging: a page over "
+                  f"{durations.format(within[0]['long_window_s'])} would fire at burn rate "
+                  f"{_sig(within[0]['burn_rate'], 3)}, while the SLO is being met; use a longer period or a ticket")
     if budget_errors < 1:
-        review = (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} short window: "
+        review = review or (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} "
+                            f"short window: "
                   f"a single failure exceeds the fast burn rate; consider a longer SLO period or a request-count floor")
         derivation += f" At {_fmt(traffic.per_hour)} requests per hour the short window holds {_fmt(requests)}."
     return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
