@@ -292,3 +292,29 @@ def test_hostile_free_text_stays_inert_in_rules_and_routing(tmp_path, write):
     assert _run(_tool("promtool"), "test", "rules", *map(str, tests)).returncode == 0
     am = _run(_tool("amtool"), "check-config", str(tmp_path / "out" / "alertmanager.yml"))
     assert am.returncode == 0, am.stdout + am.stderr
+
+
+def test_instrumentation_asks_for_every_series_at_zero_and_the_example_creates_them(tmp_path):
+    import importlib.util
+
+    from prometheus_client import CollectorRegistry, generate_latest
+
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    out = tmp_path / "export"
+    export_prometheus(plan, str(out))
+    text = (out / "instrumentation.md").read_text()
+    assert "Create every series at 0" in text and "(count + 0.5) / (total + 0.5 x bins)" in text
+    spec = importlib.util.spec_from_file_location("example_exporter", out / "example_exporter.py")
+    example = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(example)
+    instrumentation = json.loads((out / "instrumentation.json").read_text())
+    registry = CollectorRegistry()
+    example.build(instrumentation, registry)  # before any tick: nothing counted yet
+    exposition = generate_latest(registry).decode()
+    bin_uses = [u for f in instrumentation["families"] if f["name"] == "stagewatch_check_bin_items_total"
+                for u in f["uses"]]
+    assert bin_uses
+    for use in bin_uses:
+        for b in range(int(use["bins"])):
+            assert (f'stagewatch_check_bin_items_total{{bin="{b}",check="{use["check"]}",pipeline="{plan["pipeline"]}",'
+                    f'stage="{use["stage"]}"}} 0.0') in exposition, (use["check"], b)

@@ -388,12 +388,26 @@ ALL_STATISTICS = (*STATISTICS, LEVEL, BURN_RATE)
 # --- values from data (used by data checks and by the tests' simulations) -------------------------------------
 
 
-def psi(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = 0.5) -> float:
+PSI_SMOOTHING = 0.5
+
+
+def smoothed_shares(counts: np.ndarray, smoothing: float = PSI_SMOOTHING) -> np.ndarray:
+    """Shares of binned counts after adding ``smoothing`` to every bin: (c_i + s) / (sum c + s B).
+
+    The reference shares that a PSI check publishes (``stagewatch_reference_share``) are these, so that the PromQL
+    PSI equals :func:`psi` on the same counts.
+
+    >>> smoothed_shares(np.array([3, 0, 1])).round(3).tolist()
+    [0.636, 0.091, 0.273]
+    """
+    c = np.asarray(counts, dtype=float) + smoothing
+    return c / c.sum()
+
+
+def psi(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = PSI_SMOOTHING) -> float:
     """PSI = sum((a - e) ln(a / e)) between two binned samples; ``smoothing`` is added to every bin count."""
-    e = np.asarray(reference_counts, dtype=float) + smoothing
-    a = np.asarray(window_counts, dtype=float) + smoothing
-    e /= e.sum()
-    a /= a.sum()
+    e = smoothed_shares(reference_counts, smoothing)
+    a = smoothed_shares(window_counts, smoothing)
     return float(np.sum((a - e) * np.log(a / e)))
 
 

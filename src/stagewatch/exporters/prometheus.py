@@ -404,6 +404,14 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
              "What each stage must emit for the exported rules to work. Every series carries the labels `pipeline` "
              "and `stage`; per-check series also carry `check` (the plan metric id). Reference gauges are "
              "published from calibrated reference data; `stagewatch_check_statistic` by the data checks.", "",
+             "**Create every series at 0 when the stage starts**: every `bin` of "
+             "`stagewatch_check_bin_items_total` (every bin edge and every category the reference knows), every "
+             "counter of every check. A counter that first appears with its first item loses that item to "
+             "`increase()`; the rules read a bin whose series was never created as an empty bin, but only while "
+             "its reference share is published.", "",
+             "**PSI reference shares are smoothed**: publish (count + 0.5) / (total + 0.5 x bins) per bin, the "
+             "shares `stagewatch.stats.smoothed_shares` gives; the rules add the same 0.5 to every window count, so "
+             "the exported PSI equals the plan's PSI on the same counts.", "",
              "| Metric | Type | Labels | What it is |", "|---|---|---|---|"]
     for fam in instr["families"]:
         lines.append(f"| `{fam['name']}` | {fam['type']} | {', '.join(fam['labels'])} | {fam['help']} |")
