@@ -319,9 +319,16 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         derivation += " Stagewatch " + "; ".join(notes) + "."
     elif critical is not None:
         derivation += f" The suggested critical threshold {critical:g} is above the floor."
+    delay = 2 * chosen.window
+    derivation += (f" The export evaluates this check once per {window_text} on back-to-back windows, as the budget "
+                   f"assumes (a sliding window evaluated every minute fires many times more often on noise); a "
+                   f"change is judged in full by the end of the first whole window after it starts, so it is seen "
+                   f"within {durations.format(delay)}")
     if metric.get("_label_delay"):
-        derivation += (f" Labels arrive {metric['_label_delay']} late, so each window is evaluated "
-                       f"{metric['_label_delay']} after it closes, on labelled items only.")
+        delay += durations.parse(metric["_label_delay"])
+        derivation += (f", plus the {metric['_label_delay']} label delay: each window is evaluated "
+                       f"{metric['_label_delay']} after it closes, on labelled items only")
+    derivation += "."
     sizing = {
         "method": "noise floor",
         "samples_per_window": _sig(chosen.n),
@@ -336,6 +343,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         "power": POWER,
         "expected_false_alarms_per_week": _sig(crit_fa, 3),
         "expected_false_warnings_per_week": _sig(warn_fa, 3),
+        "evaluation": "once per window, back to back",
+        "detection_delay": durations.format(delay),
         "derivation": derivation,
     }
     if metric.get("_label_delay"):

@@ -15,7 +15,7 @@ from typing import Any
 
 import networkx as nx
 
-from stagewatch import durations, yamlio
+from stagewatch import durations, stats, yamlio
 from stagewatch.exporters import live_metrics
 from stagewatch.exporters.signals import (FAMILIES, CounterLevelSignal, Series, ShareSignal, Signal, counter,
                                           signal_for)
@@ -70,12 +70,33 @@ def _compare(value: str, metric: dict[str, Any], threshold: float, level_reading
 
 @dataclass
 class GroupExport:
+    """The rules of one stage (one file): fixed limits and SLOs in one group evaluated at Prometheus' global
+    interval, and statistical checks in one group per window length, evaluated once per window (``interval`` =
+    the window), so that each check judges tumbling windows as its false-alarm budget assumes."""
+
     name: str
     stage: str
     file: str
     rules: list[dict[str, Any]] = field(default_factory=list)
+    windowed: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     cases: list["Case"] = field(default_factory=list)
     alerts: int = 0
+
+    def target(self, sig: Signal) -> list[dict[str, Any]]:
+        """Where a signal's rules go: its window's group if its threshold was sized against a budget."""
+        if sig.metric["statistic"] in stats.STATISTICS:
+            return self.windowed.setdefault(sig.window, [])
+        return self.rules
+
+    def all_rules(self) -> list[dict[str, Any]]:
+        return self.rules + [r for rules in self.windowed.values() for r in rules]
+
+    def rule_groups(self) -> list[dict[str, Any]]:
+        groups = [{"name": self.name, "rules": self.rules}] if self.rules else []
+        for window in sorted(self.windowed, key=durations.parse):
+            groups.append({"name": f"{self.name}-every-{window}", "interval": window,
+                           "rules": self.windowed[window]})
+        return groups
 
     def tests(self) -> dict[str, list[dict[str, Any]]]:
         """promtool tests by sample step: all checks that share a step and a variant run in one test.
@@ -152,7 +173,7 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
             rule["for"] = sig.for_
         rule["labels"] = _labels(metric, owner, level, severity)
         rule["annotations"] = _annotations(metric, level, threshold)
-        group.rules.append(rule)
+        group.target(sig).append(rule)
         group.alerts += 1
         base = {"pipeline": sig.pipeline, "stage": sig.stage, "check": sig.check}
         expected[level] = {"exp_labels": {**base, **rule["labels"]}, "exp_annotations": rule["annotations"]}
@@ -322,7 +343,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
             else:
                 sig = signal_for(metric, pipeline, stage_id, info)
                 assert sig is not None
-                group.rules.extend(sig.recording())
+                group.target(sig).extend(sig.recording())
                 _signal_alerts(sig, metric, owner, group)
                 fams = sig.families()
             for fam in fams:
@@ -447,10 +468,9 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
     out = Path(target)
     files: dict[Path, str] = {}
     for group in built.groups:
-        if not group.rules:
+        if not group.all_rules():
             continue
-        files[out / "rules" / group.file] = RULES_HEADER + yamlio.dump({"groups": [{"name": group.name,
-                                                                                   "rules": group.rules}]})
+        files[out / "rules" / group.file] = RULES_HEADER + yamlio.dump({"groups": group.rule_groups()})
         # One test file per sample step: promtool evaluates every rule of the file at each evaluation_interval up
         # to the last eval_time, so a day-long window is tested at a coarse step and a 5m window at 1m.
         by_step = group.tests()
@@ -469,7 +489,8 @@ def export_prometheus(plan: dict[str, Any], target: str) -> list[str]:
         yamlio.write_atomic(path, text)
     alerts = sum(g.alerts for g in built.groups)
     checked = sum(len(t["alert_rule_test"]) for g in built.groups for ts in g.tests().values() for t in ts)
-    return [f"wrote {out / 'rules'}/: {sum(1 for g in built.groups if g.rules)} rule groups, {alerts} alerting rules",
+    return [f"wrote {out / 'rules'}/: {sum(len(g.rule_groups()) for g in built.groups)} rule groups, "
+            f"{alerts} alerting rules",
             f"wrote {out / 'tests'}/: promtool unit tests, {checked} alert evaluations (run: promtool test rules "
             f"{out / 'tests'}/*.yml)",
             f"wrote {out / 'alertmanager.yml'}: routing by owner and severity, "
