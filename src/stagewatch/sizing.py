@@ -101,7 +101,8 @@ def round_up(x: float, digits: int = 2) -> float:
 
 def _statistic(metric: dict[str, Any]) -> stats.Statistic:
     sides = 2 if metric["direction"] == "both" else 1
-    return stats.make(metric["statistic"], sides=sides, **(metric.get("params") or {}))
+    return stats.make(metric["statistic"], sides=sides, direction=metric["direction"],
+                      **(metric.get("params") or {}))
 
 
 def _reference_samples(reference: str, per_hour: float, n: float) -> float | None:
@@ -149,10 +150,19 @@ def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budg
     share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
     alpha = min(0.5, share / evaluations)
     enough = n >= stat.min_samples()
-    floor = stat.floor(n, m, alpha) if n > 0 else math.inf
     critical = metric.get("critical")
-    sound = enough and (critical is None or floor <= critical)
-    return _Trial(window, n, m, evaluations, alpha, floor, sound)
+    if n <= 0:
+        return _Trial(window, n, m, evaluations, alpha, math.inf, False)
+    # The floor is the smallest threshold whose false-alarm probability is alpha, so a critical threshold clears
+    # it exactly when its own probability is within alpha; the floor itself is computed for the chosen window.
+    sound = enough and (critical is None or stat.false_alarm(critical, n, m) <= alpha)
+    return _Trial(window, n, m, evaluations, alpha, math.nan, sound)
+
+
+def _with_floor(stat: stats.Statistic, trial: _Trial) -> _Trial:
+    if math.isnan(trial.floor):
+        trial.floor = stat.floor(trial.n, trial.m, trial.alpha)
+    return trial
 
 
 def size_metric(metric: dict[str, Any], traffic: Traffic, budget: Budget) -> dict[str, Any]:
@@ -236,11 +246,11 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     review = None
     fixed = metric.get("window", "auto") != "auto"
     if fixed:
-        chosen = _trial(stat, metric, traffic, budget, durations.parse(metric["window"]))
+        chosen = _with_floor(stat, _trial(stat, metric, traffic, budget, durations.parse(metric["window"])))
     else:
         trials = [_trial(stat, metric, traffic, budget, w) for w in LADDER if w >= target]
         sound = [t for t in trials if t.sound]
-        chosen = sound[0] if sound else trials[-1]
+        chosen = _with_floor(stat, sound[0] if sound else trials[-1])
         if sound and chosen.window > longest:
             review = (f"volume too low for change rate '{traffic.change_rate}': the shortest sound window is "
                       f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
