@@ -87,6 +87,25 @@ def _sig(x: float | None, digits: int = 4) -> float | int | None:
     return int(out) if out.is_integer() and abs(out) >= 1 else out
 
 
+SMALLEST_SHOWN = 1e-6
+BELOW_SHOWN = "< 1e-6"
+
+
+def shown(x: float | None) -> float | int | str | None:
+    """A probability or expected count as the plan shows it: three significant figures, and "< 1e-6" below that
+    (a figure like 2.43e-175 claims a precision that no model of real traffic has)."""
+    if x is not None and 0 < x < SMALLEST_SHOWN:
+        return BELOW_SHOWN
+    return _sig(x, 3)
+
+
+def number(x: Any) -> float:
+    """The number behind a shown figure ("< 1e-6" counts as 0 in sums; None as 0)."""
+    if isinstance(x, str):
+        return 0.0
+    return float(x or 0)
+
+
 def _compact(block: dict[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in block.items() if v is not None}
 
@@ -232,7 +251,7 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
     return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
             "critical": _sig(fast["burn_rate"]), "review": review,
             "sizing": {"method": "error budget", "slo_target": target, "slo_period": durations.format(period_s),
-                       "samples_per_window": _sig(traffic.per_hour * fast["long_window_s"] / HOUR),
+                       "samples_per_window": round(traffic.per_hour * fast["long_window_s"] / HOUR),
                        "burn_rate_alerts": pairs,
                        "derivation": derivation}}
 
@@ -341,8 +360,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     derivation += "."
     sizing = {
         "method": "noise floor",
-        "samples_per_window": _sig(chosen.n),
-        "reference_samples": _sig(chosen.m) if chosen.m is not None else None,
+        "samples_per_window": round(chosen.n),
+        "reference_samples": round(chosen.m) if chosen.m is not None else None,
         "evaluations_per_week": _sig(chosen.evaluations),
         "alpha": _sig(chosen.alpha, 3),
         "noise_floor": _sig(chosen.floor, 3),
@@ -351,8 +370,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         "detectable_change": _sig(detectable, 3),
         "detectable_at_floor": _sig(at_floor, 3),
         "power": POWER,
-        "expected_false_alarms_per_week": _sig(crit_fa, 3),
-        "expected_false_warnings_per_week": _sig(warn_fa, 3),
+        "expected_false_alarms_per_week": shown(crit_fa),
+        "expected_false_warnings_per_week": shown(warn_fa),
         "evaluation": "once per window, back to back",
         "detection_delay": durations.format(delay),
         "derivation": derivation,
