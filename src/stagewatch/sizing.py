@@ -100,9 +100,10 @@ def shown(x: float | None) -> float | int | str | None:
 
 
 def number(x: Any) -> float:
-    """The number behind a shown figure ("< 1e-6" counts as 0 in sums; None as 0)."""
+    """The number behind a shown figure: "< 1e-6" counts as its bound 1e-6, so that a sum of them is an upper
+    bound rather than a misleading 0; None counts as 0."""
     if isinstance(x, str):
-        return 0.0
+        return SMALLEST_SHOWN
     return float(x or 0)
 
 

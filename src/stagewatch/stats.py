@@ -365,7 +365,7 @@ class CountChange:
         """Smallest relative change, in the worse watched direction, that makes the alert fire with ``power``."""
         d = self._direction()
         worst = -math.inf
-        for sign, limit in ((1.0, 1e6), (-1.0, 1.0)):
+        for sign, limit in ((1.0, 1e3), (-1.0, 1.0)):  # up to a thousandfold rise, down to no items at all
             if (sign > 0 and d == "below") or (sign < 0 and d == "above"):
                 continue
             found = tails.smallest_shift(lambda s: self._tail(threshold, n, m, sign * s), power,

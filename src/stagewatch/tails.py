@@ -43,7 +43,11 @@ def _span(law) -> tuple[np.ndarray, np.ndarray]:
     each weighted by its probability times the spacing: the summands vary slowly over a step, so the sum keeps
     about three significant figures.
     """
-    low, high = int(max(law.ppf(_EDGE), 0)), int(law.isf(_EDGE))
+    low, high = law.ppf(_EDGE), law.isf(_EDGE)
+    if not (np.isfinite(low) and np.isfinite(high)):  # scipy gives up on very large laws: 8 standard deviations
+        mean, sd = law.mean(), law.std()
+        low, high = mean - 8 * sd, mean + 8 * sd
+    low, high = int(max(low, 0)), int(high)
     if high - low + 1 <= _POINTS:
         values = np.arange(low, high + 1)
         return values, law.pmf(values)
