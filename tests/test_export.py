@@ -19,7 +19,8 @@ from hypothesis import strategies as st
 from conftest import all_pipelines
 from stagewatch.exporters.checks import checks_document
 from stagewatch.exporters.prometheus import alert_name, build, export_prometheus
-from stagewatch.plan import compose, dump
+from stagewatch.plan import all_metrics, compose, dump
+from stagewatch.stats import STATISTICS
 from stagewatch.resources import validator
 from stagewatch.spec import load_pipeline
 
@@ -78,7 +79,7 @@ def test_the_rule_tests_can_fail(tmp_path):
     text = target.read_text()
     name = alert_name("frame_gate.output.pass_rate")
     rules = yaml.safe_load(text)
-    for rule in rules["groups"][0]["rules"]:
+    for rule in (r for g in rules["groups"] for r in g["rules"]):
         if rule.get("alert") == name and rule["labels"]["level"] == "critical":
             rule["expr"] = rule["expr"].rsplit(">", 1)[0] + "> 0.99"
     target.write_text(yaml.safe_dump(rules, sort_keys=False))
@@ -101,7 +102,7 @@ def test_rejected_metrics_are_not_exported():
     plan["stages"][1]["metrics"][0]["status"] = "rejected"
     rejected = plan["stages"][1]["metrics"][0]["id"]
     exported = build(plan)
-    assert all(r.get("labels", {}).get("check") != rejected for g in exported.groups for r in g.rules)
+    assert all(r.get("labels", {}).get("check") != rejected for g in exported.groups for r in g.all_rules())
     assert rejected not in exported.instrumentation["checks"]
 
 
@@ -187,6 +188,13 @@ def test_live_prometheus_evaluates_every_rule_and_fires_the_fault(tmp_path):
     out = tmp_path / "export"
     export_prometheus(plan, str(out))
     fault = "frame_gate.output.pass_rate"
+    # Statistical checks are evaluated once per window (group interval = window). A test cannot wait an hour, so
+    # the server here evaluates every group each second; that the intervals are written is checked apart.
+    for path in (out / "rules").glob("*.yml"):
+        rules = yaml.safe_load(path.read_text())
+        for group in rules["groups"]:
+            group.pop("interval", None)
+        path.write_text(yaml.safe_dump(rules, sort_keys=False))
     exporter_port, prom_port = _free_port(), _free_port()
     config = {"global": {"scrape_interval": "1s", "evaluation_interval": "1s"},
               "rule_files": [str(p) for p in sorted((out / "rules").glob("*.yml"))],
@@ -292,3 +300,48 @@ def test_hostile_free_text_stays_inert_in_rules_and_routing(tmp_path, write):
     assert _run(_tool("promtool"), "test", "rules", *map(str, tests)).returncode == 0
     am = _run(_tool("amtool"), "check-config", str(tmp_path / "out" / "alertmanager.yml"))
     assert am.returncode == 0, am.stdout + am.stderr
+
+
+def test_instrumentation_asks_for_every_series_at_zero_and_the_example_creates_them(tmp_path):
+    import importlib.util
+
+    from prometheus_client import CollectorRegistry, generate_latest
+
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    out = tmp_path / "export"
+    export_prometheus(plan, str(out))
+    text = (out / "instrumentation.md").read_text()
+    assert "Create every series at 0" in text and "(count + 0.5) / (total + 0.5 x bins)" in text
+    spec = importlib.util.spec_from_file_location("example_exporter", out / "example_exporter.py")
+    example = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(example)
+    instrumentation = json.loads((out / "instrumentation.json").read_text())
+    registry = CollectorRegistry()
+    example.build(instrumentation, registry)  # before any tick: nothing counted yet
+    exposition = generate_latest(registry).decode()
+    bin_uses = [u for f in instrumentation["families"] if f["name"] == "stagewatch_check_bin_items_total"
+                for u in f["uses"]]
+    assert bin_uses
+    for use in bin_uses:
+        for b in range(int(use["bins"])):
+            assert (f'stagewatch_check_bin_items_total{{bin="{b}",check="{use["check"]}",pipeline="{plan["pipeline"]}",'
+                    f'stage="{use["stage"]}"}} 0.0') in exposition, (use["check"], b)
+
+
+def test_statistical_checks_are_evaluated_once_per_window(exported):
+    # The budget assumes one evaluation per window on tumbling windows: each sized check sits in a group whose
+    # interval is its window; fixed limits and SLO pairs stay in the stage's group at the global interval.
+    plan, out = exported
+    windows = {m["id"]: m["window"] for m in all_metrics(plan)}
+    statistical = {m["id"] for m in all_metrics(plan) if m["statistic"] in STATISTICS}
+    seen = set()
+    for path in (out / "rules").glob("*.yml"):
+        for group in yaml.safe_load(path.read_text())["groups"]:
+            for rule in group["rules"]:
+                check = rule.get("labels", {}).get("check") or rule.get("annotations", {}).get("plan_metric")
+                if check in statistical:
+                    assert group.get("interval") == windows[check], (group["name"], check)
+                    seen.add(check)
+                elif check in windows:
+                    assert "interval" not in group, (group["name"], check)
+    assert seen == statistical & {m["id"] for m in all_metrics(plan) if m["status"] != "rejected"}

@@ -118,3 +118,17 @@ def test_edited_threshold_below_noise_floor_is_found(tmp_path, write):
     _change(out, tiny)
     propose(str(tmp_path / "p.yaml"), str(out))  # re-sizing explains the edit and flags it
     assert "below-noise-floor" in _codes(out)
+
+
+def test_a_page_at_burn_rate_1_or_less_is_found(tmp_path, write):
+    # A 3-hour SLO period leaves the 2% page pair in the 5m shortest window at burn rate 0.02 x 180 / 5 = 0.72:
+    # it would page while the SLO is met (REFERENCES.md, "SLO alerts for other periods").
+    source = write("p.yaml", SMALL.replace("latency_slo_ms: 50", "latency_slo_ms: 50\n    slo_period: 3h"))
+    out = tmp_path / "plan.yaml"
+    propose(str(source), str(out))
+    findings = [f for f in lint_file(str(out)) if f.code == "burn-rate"]
+    assert findings and "0.72" in findings[0].message and findings[0].line
+    slo = next(m for m in all_metrics(yaml.safe_load(out.read_text())) if m["statistic"] == "burn_rate")
+    assert "too short for paging" in slo["review"]
+    # The default 30-day period pages at 14.4 and 6: no finding.
+    assert "burn-rate" not in _codes(_plan(tmp_path, write))

@@ -91,7 +91,7 @@ def test_every_metric_is_sized_and_the_budget_holds(source):
     budget = plan["budget"]
     assert budget["expected_false_pages_per_week"] <= pipeline.false_alarms_per_week
     assert budget["expected_false_tickets_per_week"] <= pipeline.false_tickets_per_week
-    total = sum(m["sizing"].get("expected_false_alarms_per_week", 0) for m in all_metrics(plan)
+    total = sum(sizing.number(m["sizing"].get("expected_false_alarms_per_week")) for m in all_metrics(plan)
                 if m["severity"] == "page" and m["statistic"] in stats.STATISTICS)
     assert budget["expected_false_pages_per_week"] == pytest.approx(total, rel=1e-2, abs=1e-12)
 
@@ -222,3 +222,20 @@ def test_numbers_set_by_a_person_are_explained_not_changed():
                                 BUDGET)
     assert result["critical"] == 0.001 and result["warn"] == 0.0005 and result["window"] == "1h"
     assert "kept the critical threshold 0.001 as set" in result["sizing"]["derivation"]
+
+
+def test_figures_carry_no_false_precision():
+    # Whole sample counts; expected counts below 1e-6 read "< 1e-6"; three significant figures otherwise.
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    for metric in all_metrics(plan):
+        block = metric["sizing"]
+        assert isinstance(block.get("samples_per_window", 0), int), metric["id"]
+        assert isinstance(block.get("reference_samples", 0), int), metric["id"]
+        for key in ("expected_false_alarms_per_week", "expected_false_warnings_per_week"):
+            value = block.get(key)
+            if isinstance(value, str):
+                assert value == "< 1e-6"
+            elif value:
+                assert value >= 1e-6 and float(f"{value:.3g}") == value, (metric["id"], key, value)
+    assert sizing.shown(2.43e-175) == "< 1e-6" and sizing.shown(0.012345) == 0.0123
+    assert "under independent items" in plan["budget"]["noise_model"]

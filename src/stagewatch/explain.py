@@ -33,7 +33,8 @@ def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
                        ("noise_floor", "noise floor"), ("detectable_change", "change the alert catches"),
                        ("detectable_at_floor", "change the floor allows"),
                        ("power", "power"), ("expected_false_alarms_per_week", "expected false alarms/week"),
-                       ("evaluation_lag", "evaluated after")):
+                       ("evaluation", "evaluated"), ("evaluation_lag", "evaluated after"),
+                       ("detection_delay", "change seen within")):
         if key in sizing:
             lines.append(f"  {label + ':':29}{sizing[key]}")
     for pair in sizing.get("burn_rate_alerts", []):

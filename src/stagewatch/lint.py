@@ -124,6 +124,12 @@ def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
                 yield Finding(path, doc.line_of((*where, "critical")), "below-noise-floor",
                               f"metric '{mid}': critical {critical:g} is below the noise floor {floor:g} at window "
                               f"{metric['window']}; it will fire on noise", mid)
+        for k, pair in enumerate((metric.get("sizing") or {}).get("burn_rate_alerts") or []):
+            if metric["status"] in LIVE and pair.get("severity") == "page" and pair.get("burn_rate", 2) <= 1:
+                yield Finding(path, doc.line_of((*where, "sizing", "burn_rate_alerts", k, "burn_rate")),
+                              "burn-rate", f"metric '{mid}' pages at burn rate {pair['burn_rate']:g} over "
+                              f"{pair.get('long_window')}: at a burn rate of 1 or less the error budget lasts the "
+                              f"whole SLO period, so this pages while the SLO is met", mid)
     yield from _coverage(doc)
     summary = budget_summary(plan)
     if summary["expected_false_pages_per_week"] > plan.get("false_alarms_per_week", 1) * (1 + 1e-9):

@@ -298,14 +298,18 @@ def all_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
 def budget_summary(plan: dict[str, Any]) -> dict[str, Any]:
     live = [m for m in all_metrics(plan) if m.get("status") not in ("rejected", "stale")]
     pages = [m for m in live if m.get("severity") == "page" and sizing.is_statistical(m)]
-    expected_pages = sum((m.get("sizing") or {}).get("expected_false_alarms_per_week") or 0 for m in pages)
-    expected_tickets = sum(((m.get("sizing") or {}).get("expected_false_warnings_per_week") or 0)
-                           + (((m.get("sizing") or {}).get("expected_false_alarms_per_week") or 0)
+    number = sizing.number
+    expected_pages = sum(number((m.get("sizing") or {}).get("expected_false_alarms_per_week")) for m in pages)
+    expected_tickets = sum(number((m.get("sizing") or {}).get("expected_false_warnings_per_week"))
+                           + (number((m.get("sizing") or {}).get("expected_false_alarms_per_week"))
                               if m.get("severity") == "ticket" else 0) for m in live)
     return {
         "false_alarms_per_week": plan["false_alarms_per_week"],
         "page_checks": len(pages),
         "expected_false_pages_per_week": sizing._sig(expected_pages, 3),
+        "noise_model": "from sampling noise alone, under independent items, with each check evaluated once per "
+                       "window as the Prometheus export configures; real data with hourly or weekly swings, or "
+                       "items that come in bursts, alarm more often: compare with a replay of your own data",
         "false_tickets_per_week": plan["false_tickets_per_week"],
         "expected_false_tickets_per_week": sizing._sig(expected_tickets, 3),
         "split": "even share of the expected false alarms per week for each check (Bonferroni on the count)",

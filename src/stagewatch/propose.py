@@ -36,14 +36,14 @@ class MergeReport:
                        + (" ..." if len(self.stale) > 5 else ""))
         if self.flagged:
             out.append(f"  {len(self.flagged)} flagged for review (see 'review:' in the plan)")
-        out.append(f"  expected false pages per week from noise: {small(self.expected_false_pages)} "
-                   f"(budget {self.budget:g})")
+        out.append(f"  expected false pages per week from sampling noise alone, under independent items: "
+                   f"{small(self.expected_false_pages)} (budget {self.budget:g})")
         return out
 
 
 def small(x: float) -> str:
-    """Tiny expected counts read as "< 0.001" rather than 5e-21."""
-    return "< 0.001" if 0 < x < 0.001 else f"{x:.3g}"
+    """Tiny expected counts read as "< 1e-6" rather than 5e-21; three significant figures otherwise."""
+    return "< 1e-6" if 0 < x < 1e-6 else f"{x:.3g}"
 
 
 def _ids(plan: dict[str, Any] | None) -> dict[str, dict[str, Any]]:

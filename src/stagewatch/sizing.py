@@ -87,6 +87,26 @@ def _sig(x: float | None, digits: int = 4) -> float | int | None:
     return int(out) if out.is_integer() and abs(out) >= 1 else out
 
 
+SMALLEST_SHOWN = 1e-6
+BELOW_SHOWN = "< 1e-6"
+
+
+def shown(x: float | None) -> float | int | str | None:
+    """A probability or expected count as the plan shows it: three significant figures, and "< 1e-6" below that
+    (a figure like 2.43e-175 claims a precision that no model of real traffic has)."""
+    if x is not None and 0 < x < SMALLEST_SHOWN:
+        return BELOW_SHOWN
+    return _sig(x, 3)
+
+
+def number(x: Any) -> float:
+    """The number behind a shown figure: "< 1e-6" counts as its bound 1e-6, so that a sum of them is an upper
+    bound rather than a misleading 0; None counts as 0."""
+    if isinstance(x, str):
+        return SMALLEST_SHOWN
+    return float(x or 0)
+
+
 def _compact(block: dict[str, Any]) -> dict[str, Any]:
     return {k: v for k, v in block.items() if v is not None}
 
@@ -101,7 +121,8 @@ def round_up(x: float, digits: int = 2) -> float:
 
 def _statistic(metric: dict[str, Any]) -> stats.Statistic:
     sides = 2 if metric["direction"] == "both" else 1
-    return stats.make(metric["statistic"], sides=sides, **(metric.get("params") or {}))
+    return stats.make(metric["statistic"], sides=sides, direction=metric["direction"],
+                      **(metric.get("params") or {}))
 
 
 def _reference_samples(reference: str, per_hour: float, n: float) -> float | None:
@@ -149,10 +170,19 @@ def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budg
     share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
     alpha = min(0.5, share / evaluations)
     enough = n >= stat.min_samples()
-    floor = stat.floor(n, m, alpha) if n > 0 else math.inf
     critical = metric.get("critical")
-    sound = enough and (critical is None or floor <= critical)
-    return _Trial(window, n, m, evaluations, alpha, floor, sound)
+    if n <= 0:
+        return _Trial(window, n, m, evaluations, alpha, math.inf, False)
+    # The floor is the smallest threshold whose false-alarm probability is alpha, so a critical threshold clears
+    # it exactly when its own probability is within alpha; the floor itself is computed for the chosen window.
+    sound = enough and (critical is None or stat.false_alarm(critical, n, m) <= alpha)
+    return _Trial(window, n, m, evaluations, alpha, math.nan, sound)
+
+
+def _with_floor(stat: stats.Statistic, trial: _Trial) -> _Trial:
+    if math.isnan(trial.floor):
+        trial.floor = stat.floor(trial.n, trial.m, trial.alpha)
+    return trial
 
 
 def size_metric(metric: dict[str, Any], traffic: Traffic, budget: Budget) -> dict[str, Any]:
@@ -205,16 +235,24 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
         f"{fast['budget_share']:.0%} of the budget), and at {_sig(alerts[1]['burn_rate'], 3)} over "
         f"{durations.format(alerts[1]['long_window_s'])}; opens a ticket at {_sig(slow['burn_rate'], 3)} over "
         f"{durations.format(slow['long_window_s'])} ({slow['budget_share']:.0%}). Both windows of a pair must exceed "
-        f"the rate, so the alert stops soon after the burn does.")
+        f"the rate, so the alert stops soon after the burn does. The windows are the SRE Workbook's 30-day windows "
+        f"scaled to the {durations.format(period_s)} period (whole minutes, at least "
+        f"{durations.format(stats.SHORTEST_SLO_WINDOW_S)}), so each pair spends the same share of the budget.")
     review = None
+    within = stats.pages_within_budget(alerts)
+    if within:
+        review = (f"the {durations.format(period_s)} SLO period is too short for paging: a page over "
+                  f"{durations.format(within[0]['long_window_s'])} would fire at burn rate "
+                  f"{_sig(within[0]['burn_rate'], 3)}, while the SLO is being met; use a longer period or a ticket")
     if budget_errors < 1:
-        review = (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} short window: "
+        review = review or (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} "
+                            f"short window: "
                   f"a single failure exceeds the fast burn rate; consider a longer SLO period or a request-count floor")
         derivation += f" At {_fmt(traffic.per_hour)} requests per hour the short window holds {_fmt(requests)}."
     return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
             "critical": _sig(fast["burn_rate"]), "review": review,
             "sizing": {"method": "error budget", "slo_target": target, "slo_period": durations.format(period_s),
-                       "samples_per_window": _sig(traffic.per_hour * fast["long_window_s"] / HOUR),
+                       "samples_per_window": round(traffic.per_hour * fast["long_window_s"] / HOUR),
                        "burn_rate_alerts": pairs,
                        "derivation": derivation}}
 
@@ -228,11 +266,11 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     review = None
     fixed = metric.get("window", "auto") != "auto"
     if fixed:
-        chosen = _trial(stat, metric, traffic, budget, durations.parse(metric["window"]))
+        chosen = _with_floor(stat, _trial(stat, metric, traffic, budget, durations.parse(metric["window"])))
     else:
         trials = [_trial(stat, metric, traffic, budget, w) for w in LADDER if w >= target]
         sound = [t for t in trials if t.sound]
-        chosen = sound[0] if sound else trials[-1]
+        chosen = _with_floor(stat, sound[0] if sound else trials[-1])
         if sound and chosen.window > longest:
             review = (f"volume too low for change rate '{traffic.change_rate}': the shortest sound window is "
                       f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
@@ -311,13 +349,20 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         derivation += " Stagewatch " + "; ".join(notes) + "."
     elif critical is not None:
         derivation += f" The suggested critical threshold {critical:g} is above the floor."
+    delay = 2 * chosen.window
+    derivation += (f" The export evaluates this check once per {window_text} on back-to-back windows, as the budget "
+                   f"assumes (a sliding window evaluated every minute fires many times more often on noise); a "
+                   f"change is judged in full by the end of the first whole window after it starts, so it is seen "
+                   f"within {durations.format(delay)}")
     if metric.get("_label_delay"):
-        derivation += (f" Labels arrive {metric['_label_delay']} late, so each window is evaluated "
-                       f"{metric['_label_delay']} after it closes, on labelled items only.")
+        delay += durations.parse(metric["_label_delay"])
+        derivation += (f", plus the {metric['_label_delay']} label delay: each window is evaluated "
+                       f"{metric['_label_delay']} after it closes, on labelled items only")
+    derivation += "."
     sizing = {
         "method": "noise floor",
-        "samples_per_window": _sig(chosen.n),
-        "reference_samples": _sig(chosen.m) if chosen.m is not None else None,
+        "samples_per_window": round(chosen.n),
+        "reference_samples": round(chosen.m) if chosen.m is not None else None,
         "evaluations_per_week": _sig(chosen.evaluations),
         "alpha": _sig(chosen.alpha, 3),
         "noise_floor": _sig(chosen.floor, 3),
@@ -326,8 +371,10 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         "detectable_change": _sig(detectable, 3),
         "detectable_at_floor": _sig(at_floor, 3),
         "power": POWER,
-        "expected_false_alarms_per_week": _sig(crit_fa, 3),
-        "expected_false_warnings_per_week": _sig(warn_fa, 3),
+        "expected_false_alarms_per_week": shown(crit_fa),
+        "expected_false_warnings_per_week": shown(warn_fa),
+        "evaluation": "once per window, back to back",
+        "detection_delay": durations.format(delay),
         "derivation": derivation,
     }
     if metric.get("_label_delay"):

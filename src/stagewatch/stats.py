@@ -23,6 +23,8 @@ import numpy as np
 from scipy import optimize
 from scipy import stats as st
 
+from stagewatch import tails
+
 DEFAULT_POWER = 0.8
 
 
@@ -177,7 +179,12 @@ class KS:
         return self.detectable_at(self.floor(n, m, alpha), n, m, power)
 
     def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
-        return threshold + float(st.kstwobign.ppf(power)) / math.sqrt(effective_n(n, m))
+        # Stated shift shape: a small location shift of a normal law. sqrt(n_eff) (F_n - G_m) tends to a Brownian
+        # bridge B(u) plus sqrt(n_eff) times the true difference, whose shape over u = F(x) is phi(Phi^-1(u)) scaled
+        # to peak at the true distance D; solve P(sup |B + sqrt(n_eff) D h| > threshold sqrt(n_eff)) = power by
+        # simulating the bridge (no closed form: the supremum sits where the difference is flattest).
+        n_eff = effective_n(n, m)
+        return _ks_shift(round(threshold * math.sqrt(n_eff), 4), power) / math.sqrt(n_eff)
 
     def min_samples(self):
         return 30  # common practice: the large-sample form is used from a few dozen samples on
@@ -190,76 +197,87 @@ class KS:
 class Proportion:
     """Change of a share (missing, unknown, pass-through, error rate) from a reference share ``baseline``.
 
-    Thresholds are absolute changes of the share. Two-proportion normal approximation.
+    Thresholds are absolute changes of the share: the window share minus the reference share, the latter
+    estimated from ``m`` items (or known exactly, ``m=None``). False alarms and power come from the exact binomial
+    laws (:func:`stagewatch.tails.share_tail`), not the normal approximation, which fires 1.4x alpha at a share of
+    0.01 and 2.6x at 0.001 in the far tail. ``direction`` is ``above``, ``below`` or ``both`` (default: ``both``
+    for ``sides=2``, else ``above``).
     """
 
     baseline: float = 0.01
     sides: int = 2
+    direction: str = ""
     name: str = "proportion"
     unit: str = "change in share"
+
+    def _direction(self) -> str:
+        return self.direction or ("both" if self.sides == 2 else "above")
 
     def _se0(self, n, m):
         p = self.baseline
         inv_m = 0.0 if m is None else 1.0 / m
         return math.sqrt(p * (1 - p) * (1.0 / n + inv_m))
 
+    def _tail(self, threshold: float, n: float, m: float | None, shift: float = 0.0) -> float:
+        return tails.share_tail(float(threshold), tails.whole(n), None if m is None else tails.whole(m),
+                                self.baseline, self._direction(), shift)
+
     def floor(self, n, m, alpha):
-        return _z(alpha, self.sides) * self._se0(n, m)
+        start = max(2 * _z(alpha, 2) * self._se0(n, m), 2.0 / tails.whole(n))
+        return tails.smallest_threshold(lambda t: self._tail(t, n, m), alpha, start)
 
     def false_alarm(self, threshold, n, m):
-        return min(1.0, self.sides * float(st.norm.sf(threshold / self._se0(n, m))))
+        return self._tail(threshold, n, m)
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
-        p0 = self.baseline
-        za = _z(alpha, self.sides)
-        zb = float(st.norm.ppf(power))
-        inv_m = 0.0 if m is None else 1.0 / m
-        room = 1 - p0 - 1e-12
+        return self.detectable_at(self.floor(n, m, alpha), n, m, power)
 
-        def gap(delta: float) -> float:
-            p1 = p0 + delta
-            w = (1.0 / n) / (1.0 / n + inv_m) if inv_m else 1.0
-            pbar = w * p1 + (1 - w) * p0 if inv_m else p0
-            se_null = math.sqrt(pbar * (1 - pbar) * (1.0 / n + inv_m))
-            se_alt = math.sqrt(p1 * (1 - p1) / n + p0 * (1 - p0) * inv_m)
-            return delta - (za * se_null + zb * se_alt)
+    def _room(self) -> list[float]:
+        """The largest shift each watched direction allows (+ rise, - drop)."""
+        d = self._direction()
+        out = []
+        if d in ("above", "both"):
+            out.append(1 - self.baseline)
+        if d in ("below", "both"):
+            out.append(-self.baseline)
+        return out
 
-        if gap(room) < 0:
-            return float("inf")
-        return float(optimize.brentq(gap, 1e-12, room))
+    def _fires(self, threshold, n, m, shift):
+        return self._tail(threshold, n, m, shift)
 
     def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
-        """Smallest true change whose observed change exceeds ``threshold`` with probability ``power``.
+        """Smallest true change (in the worse watched direction) that makes the alert fire with ``power``.
 
-        (``detectable`` above uses the pooled null variance of Fleiss et al.; this one needs only the
-        variance under the shift.)"""
-        p0 = self.baseline
-        zb = float(st.norm.ppf(power))
-        inv_m = 0.0 if m is None else 1.0 / m
-        room = 1 - p0 - 1e-12
-
-        def gap(delta: float) -> float:
-            p1 = p0 + delta
-            return delta - threshold - zb * math.sqrt(p1 * (1 - p1) / n + p0 * (1 - p0) * inv_m)
-
-        if gap(room) < 0:
-            return float("inf")
-        return float(optimize.brentq(gap, 0.0, room))
+        A direction with no room for a change that large (a drop of 0.1 from a share of 0.05) is left out; if no
+        direction has room, the change cannot be detected (inf)."""
+        worst = -math.inf
+        for room in self._room():
+            sign = 1.0 if room > 0 else -1.0
+            found = tails.smallest_shift(lambda s: self._fires(threshold, n, m, sign * s), power,
+                                         max(threshold, 1e-6) * 2, abs(room))
+            if not math.isinf(found):
+                worst = max(worst, found)
+        return math.inf if math.isinf(worst) else worst
 
     def min_samples(self):
-        # common practice for the normal approximation: n p >= 10 and n (1 - p) >= 10
-        return math.ceil(10 / min(self.baseline, 1 - self.baseline))
+        # The exact test holds its size at any n. Below one expected match per window a share of 0 is the usual
+        # window, and a drop cannot show: our rule, at least one expected match (or non-match).
+        return math.ceil(1 / min(self.baseline, 1 - self.baseline) - 1e-9)
 
     def describe(self):
-        side = "two-sided" if self.sides == 2 else "one-sided"
-        return f"two-proportion z-test, {side}, at a reference share of {self.baseline:g}"
+        d = self._direction()
+        side = {"both": "two-sided", "above": "one-sided (rise)", "below": "one-sided (drop)"}[d]
+        return (f"exact binomial law of the window share minus the reference share, {side}, at a reference share "
+                f"of {self.baseline:g}")
 
 
 @dataclass
 class Quantile(Proportion):
     """Shift of a quantile, read as the share of window values beyond the reference ``q``-quantile.
 
-    With no shift that share is 1 - q, so the proportion machinery applies with baseline 1 - q (one-sided).
+    With no shift that share is 1 - q. The reference quantile is the k-th of ``m`` reference values
+    (k = ceil(q m)), so the mass beyond it is Beta(m - k + 1, k) and the window count beta-binomial: the exact law
+    at any sample size, small references included (:func:`stagewatch.tails.quantile_share_tail`).
     """
 
     q: float = 0.95
@@ -268,11 +286,16 @@ class Quantile(Proportion):
 
     def __post_init__(self):
         self.baseline = 1 - self.q
-        self.sides = 1
+        if not self.direction:
+            self.sides = 1
+
+    def _tail(self, threshold, n, m, shift=0.0):
+        return tails.quantile_share_tail(float(threshold), tails.whole(n), None if m is None else tails.whole(m),
+                                         self.q, self._direction(), shift)
 
     def describe(self):
-        return (f"share of values above the reference {self.q:g}-quantile, one-sided two-proportion z-test "
-                f"against {1 - self.q:g}")
+        return (f"share of values beyond the reference {self.q:g}-quantile against {1 - self.q:g}, exact "
+                f"beta-binomial law (the quantile estimated from the reference sample)")
 
 
 @dataclass
@@ -307,37 +330,80 @@ class MeanShift:
 
 @dataclass
 class CountChange:
-    """Relative change of a count against its expected value (Poisson), e.g. rows or requests per window.
+    """Relative change of a count against the reference rate, e.g. rows or requests per window.
 
-    ``n`` is the expected count in the window; ``m`` is ignored (the reference rate is taken as known).
+    ``n`` is the expected count in the window and ``m`` the count over the reference period (``None``: the
+    reference rate is known exactly). The law is exact: given the total of both counts, the window's count is
+    binomial (the conditional test of two Poisson rates, :func:`stagewatch.tails.count_tail`), so a short
+    reference widens the floor as it should.
     """
 
     sides: int = 2
+    direction: str = ""
     name: str = "count"
     unit: str = "relative change of the count"
 
+    def _direction(self) -> str:
+        return self.direction or ("both" if self.sides == 2 else "above")
+
+    def _tail(self, threshold, n, m, shift=0.0):
+        return tails.count_tail(float(threshold), float(n), None if m is None else float(m), self._direction(),
+                                shift)
+
     def floor(self, n, m, alpha):
-        return _z(alpha, self.sides) / math.sqrt(n)
+        inv_m = 0.0 if m is None else 1.0 / m
+        start = 2 * _z(alpha, 2) * math.sqrt(1.0 / n + inv_m) + 1.0 / n
+        return tails.smallest_threshold(lambda t: self._tail(t, n, m), alpha, start)
 
     def false_alarm(self, threshold, n, m):
-        return min(1.0, self.sides * float(st.norm.sf(threshold * math.sqrt(n))))
+        return self._tail(threshold, n, m)
 
     def detectable(self, n, m, alpha, power=DEFAULT_POWER):
         return self.detectable_at(self.floor(n, m, alpha), n, m, power)
 
     def detectable_at(self, threshold, n, m, power=DEFAULT_POWER):
-        # Under a rise r the relative count has standard deviation sqrt((1 + r) / n), so solve
-        # r = threshold + z(power) sqrt((1 + r) / n).
-        zb = float(st.norm.ppf(power))
-        return float(optimize.brentq(lambda r: r - threshold - zb * math.sqrt((1 + r) / n), threshold,
-                                     threshold + zb * math.sqrt((2 + threshold) / n) + 10))
+        """Smallest relative change, in the worse watched direction, that makes the alert fire with ``power``."""
+        d = self._direction()
+        worst = -math.inf
+        for sign, limit in ((1.0, 1e3), (-1.0, 1.0)):  # up to a thousandfold rise, down to no items at all
+            if (sign > 0 and d == "below") or (sign < 0 and d == "above"):
+                continue
+            found = tails.smallest_shift(lambda s: self._tail(threshold, n, m, sign * s), power,
+                                         max(threshold, 1e-6) * 2, limit)
+            if not math.isinf(found):
+                worst = max(worst, found)
+        return math.inf if math.isinf(worst) else worst
 
     def min_samples(self):
-        return 10  # common practice for the normal approximation of a Poisson count
+        return 1  # the exact law holds at any count; the floor says how large a change must be
 
     def describe(self):
-        return ("Poisson count against its expected value (real traffic swings by hour and weekday more than "
-                "Poisson: compare against the same hour of the reference)")
+        return ("count against the reference rate, exact conditional binomial law of two Poisson counts (real "
+                "traffic swings by hour and weekday more than Poisson: compare against the same hour of the "
+                "reference)")
+
+
+@lru_cache(maxsize=1)
+def _bridge() -> tuple[np.ndarray, np.ndarray]:
+    """2,000 Brownian bridges on 400 points (fixed seed) and the shape of a normal location shift over u."""
+    rng = np.random.default_rng(20261202)
+    points = 400
+    u = (np.arange(1, points + 1) - 0.5) / points
+    walk = np.cumsum(rng.normal(0, math.sqrt(1 / points), (2000, points)), axis=1)
+    bridge = walk - u * walk[:, -1:]
+    shape = st.norm.pdf(st.norm.ppf(u))
+    return bridge, shape / shape.max()
+
+
+@lru_cache(maxsize=4096)
+def _ks_shift(scaled_threshold: float, power: float) -> float:
+    """Scaled distance delta with P(sup |B(u) + delta h(u)| > scaled_threshold) = power (see KS.detectable_at)."""
+    bridge, shape = _bridge()
+
+    def fires(delta: float) -> float:
+        return float(np.mean(np.max(np.abs(bridge + delta * shape), axis=1) > scaled_threshold))
+
+    return tails.smallest_shift(fires, power, max(scaled_threshold, 0.1), 1e3)
 
 
 @lru_cache(maxsize=4096)
@@ -361,7 +427,7 @@ def _noncentrality_for(df: int, critical: float, power: float) -> float:
     return float(optimize.brentq(gap, 1e-9, high))
 
 
-def make(name: str, **params: float) -> Statistic:
+def make(name: str, **params: float | str) -> Statistic:
     """The statistic registered as ``name`` with its parameters (``bins``, ``categories``, ``baseline`` ...)."""
     factory = STATISTICS[name]
     accepted = factory.__dataclass_fields__  # type: ignore[attr-defined]
@@ -388,12 +454,26 @@ ALL_STATISTICS = (*STATISTICS, LEVEL, BURN_RATE)
 # --- values from data (used by data checks and by the tests' simulations) -------------------------------------
 
 
-def psi(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = 0.5) -> float:
+PSI_SMOOTHING = 0.5
+
+
+def smoothed_shares(counts: np.ndarray, smoothing: float = PSI_SMOOTHING) -> np.ndarray:
+    """Shares of binned counts after adding ``smoothing`` to every bin: (c_i + s) / (sum c + s B).
+
+    The reference shares that a PSI check publishes (``stagewatch_reference_share``) are these, so that the PromQL
+    PSI equals :func:`psi` on the same counts.
+
+    >>> smoothed_shares(np.array([3, 0, 1])).round(3).tolist()
+    [0.636, 0.091, 0.273]
+    """
+    c = np.asarray(counts, dtype=float) + smoothing
+    return c / c.sum()
+
+
+def psi(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = PSI_SMOOTHING) -> float:
     """PSI = sum((a - e) ln(a / e)) between two binned samples; ``smoothing`` is added to every bin count."""
-    e = np.asarray(reference_counts, dtype=float) + smoothing
-    a = np.asarray(window_counts, dtype=float) + smoothing
-    e /= e.sum()
-    a /= a.sum()
+    e = smoothed_shares(reference_counts, smoothing)
+    a = smoothed_shares(window_counts, smoothing)
     return float(np.sum((a - e) * np.log(a / e)))
 
 
@@ -431,7 +511,8 @@ def ks_binning_error(reference_counts: np.ndarray, window_counts: np.ndarray) ->
 # Many windows at once (replay evaluates every window of a month): rows are windows, columns bins or categories.
 
 
-def psi_many(reference_counts: np.ndarray, window_counts: np.ndarray, smoothing: float = 0.5) -> np.ndarray:
+def psi_many(reference_counts: np.ndarray, window_counts: np.ndarray,
+             smoothing: float = PSI_SMOOTHING) -> np.ndarray:
     """:func:`psi` of each row of ``window_counts`` against one reference (the same smoothing)."""
     e = np.asarray(reference_counts, dtype=float) + smoothing
     a = np.atleast_2d(np.asarray(window_counts, dtype=float)) + smoothing
@@ -466,8 +547,14 @@ def ks_many(reference_counts: np.ndarray, window_counts: np.ndarray) -> np.ndarr
 
 # --- SLO burn rates -------------------------------------------------------------------------------------------
 
-# The SRE Workbook's recommended starting points (ch. 5, table 5-8), as (severity, long window, budget share).
+# The SRE Workbook's recommended starting points for a 30-day SLO (ch. 5, table 5-8), as (severity, long window,
+# budget share). Budget consumed = burn rate x long window / period.
 BURN_RATE_WINDOWS = (("page", 3600, 0.02), ("page", 6 * 3600, 0.05), ("ticket", 3 * 86400, 0.10))
+WORKBOOK_PERIOD_S = 30 * 86400
+SHORT_WINDOW_FRACTION = 12  # the short window is 1/12 of the long one (table 5-8)
+# A rate() over fewer than a few scrapes is noise; common practice keeps a range at least 4 scrape intervals long,
+# and 5m covers that at scrape intervals up to 75s.
+SHORTEST_SLO_WINDOW_S = 300
 
 
 def burn_rate(budget_share: float, long_window_s: float, period_s: float) -> float:
@@ -487,14 +574,33 @@ class BurnRateAlert(TypedDict):
     budget_share: float
 
 
+def _whole_minutes(seconds: float) -> int:
+    return max(60, int(round(seconds / 60)) * 60)
+
+
 def burn_rate_alerts(period_s: float) -> list[BurnRateAlert]:
-    """Multiwindow, multi-burn-rate alert pairs for an SLO period; the short window is 1/12 of the long one."""
+    """Multiwindow, multi-burn-rate alert pairs for an SLO period.
+
+    The windows scale with the period so that each pair still spends 2%, 5% and 10% of the budget at the
+    Workbook's burn rates (14.4, 6 and 1): a 7-day SLO pages at 14.4 over 14m (short window 5m), a 28-day one over
+    56m. Windows are whole minutes and at least ``SHORTEST_SLO_WINDOW_S``; the burn rate is then computed from the
+    window actually used, so the budget share stays exact (a 1-day SLO pages at 5.76 over 5m, 2% of its budget).
+
+    >>> [(a["long_window_s"] // 60, a["burn_rate"]) for a in burn_rate_alerts(7 * 86400)]
+    [(14, 14.4), (84, 6.0), (1008, 1.0)]
+    """
     out: list[BurnRateAlert] = []
-    for severity, long_window, share in BURN_RATE_WINDOWS:
-        long_s = float(min(long_window, period_s))
-        out.append({"severity": severity, "long_window_s": long_s, "short_window_s": long_s / 12,
-                    "burn_rate": burn_rate(share, long_s, period_s), "budget_share": share})
+    for severity, long_30d, share in BURN_RATE_WINDOWS:
+        long_s = max(SHORTEST_SLO_WINDOW_S, _whole_minutes(long_30d * period_s / WORKBOOK_PERIOD_S))
+        short_s = min(long_s, max(SHORTEST_SLO_WINDOW_S, _whole_minutes(long_s / SHORT_WINDOW_FRACTION)))
+        out.append({"severity": severity, "long_window_s": float(long_s), "short_window_s": float(short_s),
+                    "burn_rate": round(burn_rate(share, long_s, period_s), 9), "budget_share": share})
     return out
+
+
+def pages_within_budget(alerts: list[BurnRateAlert]) -> list[BurnRateAlert]:
+    """The page pairs whose burn rate is 1 or less: they page while the SLO is being met."""
+    return [a for a in alerts if a["severity"] == "page" and a["burn_rate"] <= 1]
 
 
 # --- sequential: a Bernoulli CUSUM for slow shares (label-based quality) ---------------------------------------

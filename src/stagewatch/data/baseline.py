@@ -193,6 +193,7 @@ def add_thresholds(plan_path: str, out_dir: str, data: dict[str, str], *, time_c
     from stagewatch.data.replay import run_replay
     from stagewatch.data.thresholds import fit
     from stagewatch.plan import load_plan
+    from stagewatch.sizing import number
 
     plan, _ = load_plan(plan_path)
     path = os.path.join(out_dir, FILE)
@@ -210,8 +211,9 @@ def add_thresholds(plan_path: str, out_dir: str, data: dict[str, str], *, time_c
         metric = metrics[c.id]
         ref = body["stages"][c.stage]["checks"][c.id]
         sizing = metric.get("sizing") or {}
+        alphas = {"critical": sizing.get("alpha"), "warn": sizing.get("warn_alpha")}
         fitted = fit(metric, ref, c.values, c.samples, c.reference_samples, c.times, lo,
-                     {"critical": sizing.get("alpha"), "warn": sizing.get("warn_alpha")})
+                     {k: (None if v is None else number(v)) for k, v in alphas.items()})
         if fitted:
             fitted["signature"] = contract.signature(metric)
             found[c.id] = _clean(fitted)

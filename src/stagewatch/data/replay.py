@@ -102,6 +102,13 @@ class ReplayResult:
         return self.pages_per_week() > self.budget_pages
 
 
+def _figure(shown: Any) -> float | None:
+    """A figure as the plan shows it ("< 1e-6" counts as its bound), None when absent."""
+    from stagewatch.sizing import number
+
+    return None if shown is None else number(shown)
+
+
 def _step(cadence: str, runnable: list[Runnable]) -> float:
     if cadence == "1m":
         return 60.0
@@ -188,8 +195,8 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
         values, n, m = r.measure.values(r.ref, counts, expected)
         levels, insufficient = _levels(r, values, n)
         sizing = r.metric.get("sizing") or {}
-        planned_crit = sizing.get("expected_false_alarms_per_week")
-        planned_warn = sizing.get("expected_false_warnings_per_week")
+        planned_crit = _figure(sizing.get("expected_false_alarms_per_week"))
+        planned_warn = _figure(sizing.get("expected_false_warnings_per_week"))
         windows = (end - start) / seconds
         crit_n, warn_n = int(np.sum(levels == 2)), int(np.sum(levels == 1))
         episodes = _episodes(times, levels > 0, seconds)
@@ -274,8 +281,8 @@ def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start
     result = ReplayResult(start=lo, end=hi, cadence=cadence, checks=checks, not_measured=unmeasured,
                           budget_pages=float(plan.get("false_alarms_per_week", 1)),
                           budget_tickets=float(plan.get("false_tickets_per_week", 5)),
-                          planned_pages=budget.get("expected_false_pages_per_week"),
-                          planned_tickets=budget.get("expected_false_tickets_per_week"), injection=change)
+                          planned_pages=_figure(budget.get("expected_false_pages_per_week")),
+                          planned_tickets=_figure(budget.get("expected_false_tickets_per_week")), injection=change)
     if change:
         _detection(result, plan)
     return result

@@ -36,7 +36,10 @@ def setup(metric: dict[str, Any], ref: dict[str, Any], stage_ref: dict[str, Any]
     if not option or metric["statistic"] not in ("proportion", "quantile") or not ref.get("n"):
         return None
     sizing = metric.get("sizing") or {}
-    alpha, evaluations = sizing.get("alpha"), sizing.get("evaluations_per_week")
+    from stagewatch.sizing import number
+
+    alpha = number(sizing["alpha"]) if sizing.get("alpha") is not None else None
+    evaluations = sizing.get("evaluations_per_week")
     hours = stage_ref.get("hours") or 0
     if not alpha or not evaluations or not hours:
         return None

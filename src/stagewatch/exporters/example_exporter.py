@@ -4,8 +4,9 @@
 It reads the ``instrumentation.json`` written next to it by ``stagewatch export --to prometheus``, serves every
 family with steady, healthy values on ``--port``, and with ``--fault CHECK`` plays a fault on one check (a share
 moves past its critical threshold, a distribution collapses onto one bin, errors burst ...). Real stages emit the
-same families from their own code: increment ``stagewatch_check_items_total`` and
-``stagewatch_check_matches_total`` as items pass a check, count bins, observe latencies.
+same families from their own code: create every check's counter series (every bin and category) at 0 at start,
+increment ``stagewatch_check_items_total`` and ``stagewatch_check_matches_total`` as items pass a check, count
+bins, observe latencies. PSI reference shares are smoothed: (count + 0.5) / (total + 0.5 x bins) per bin.
 
     pip install prometheus-client
     python example_exporter.py --port 9464 [--fault frame_gate.output.pass_rate]
@@ -38,7 +39,25 @@ def build(instrumentation: dict, registry: CollectorRegistry) -> dict:
         kwargs = {"buckets": buckets} if fam["type"] == "histogram" else {}
         metrics[fam["name"]] = cls(_short(fam["name"], fam["type"]), fam["help"], fam["labels"], registry=registry,
                                    **kwargs)
+    _create_at_zero(instrumentation, metrics)
     return metrics
+
+
+def _create_at_zero(instrumentation: dict, metrics: dict) -> None:
+    """Create every counter series at 0 before the first item: every bin or category of a distribution check
+    and every check counter. A series that first appears with its first item loses that item to increase(), and
+    a bin that never appears would otherwise be missing from PSI instead of counting as empty."""
+    pipeline = instrumentation["pipeline"]
+    for fam in instrumentation["families"]:
+        if fam["type"] != "counter" or "check" not in fam["labels"]:
+            continue
+        for use in fam["uses"]:
+            labelled = {"pipeline": pipeline, "stage": use["stage"], "check": use["check"]}
+            if "bin" in fam["labels"]:
+                for b in range(int(use.get("bins", 10))):
+                    metrics[fam["name"]].labels(**labelled, bin=str(b))
+            else:
+                metrics[fam["name"]].labels(**labelled)
 
 
 def tick(instrumentation: dict, metrics: dict, fault: str | None, now: float) -> None:

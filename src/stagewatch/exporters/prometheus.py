@@ -15,7 +15,7 @@ from typing import Any, Sequence
 
 import networkx as nx
 
-from stagewatch import durations, yamlio
+from stagewatch import durations, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.errors import StagewatchError
 from stagewatch.escape import go_template_literal, markdown_code, markdown_text
@@ -72,12 +72,33 @@ def _compare(value: str, metric: dict[str, Any], threshold: float, level_reading
 
 @dataclass
 class GroupExport:
+    """The rules of one stage (one file): fixed limits and SLOs in one group evaluated at Prometheus' global
+    interval, and statistical checks in one group per window length, evaluated once per window (``interval`` =
+    the window), so that each check judges tumbling windows as its false-alarm budget assumes."""
+
     name: str
     stage: str
     file: str
     rules: list[dict[str, Any]] = field(default_factory=list)
+    windowed: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     cases: list["Case"] = field(default_factory=list)
     alerts: int = 0
+
+    def target(self, sig: Signal) -> list[dict[str, Any]]:
+        """Where a signal's rules go: its window's group if its threshold was sized against a budget."""
+        if sig.metric["statistic"] in stats.STATISTICS:
+            return self.windowed.setdefault(sig.window, [])
+        return self.rules
+
+    def all_rules(self) -> list[dict[str, Any]]:
+        return self.rules + [r for rules in self.windowed.values() for r in rules]
+
+    def rule_groups(self) -> list[dict[str, Any]]:
+        groups = [{"name": self.name, "rules": self.rules}] if self.rules else []
+        for window in sorted(self.windowed, key=durations.parse):
+            groups.append({"name": f"{self.name}-every-{window}", "interval": window,
+                           "rules": self.windowed[window]})
+        return groups
 
     def tests(self) -> dict[str, list[dict[str, Any]]]:
         """promtool tests by sample step: all checks that share a step and a variant run in one test.
@@ -156,7 +177,7 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
         annotations = _annotations(metric, level, threshold)
         rule["labels"] = _templated(labels)
         rule["annotations"] = _templated(annotations)
-        group.rules.append(rule)
+        group.target(sig).append(rule)
         group.alerts += 1
         base = {"pipeline": sig.pipeline, "stage": sig.stage, "check": sig.check}
         expected[level] = {"exp_labels": {**base, **labels}, "exp_annotations": annotations}
@@ -330,7 +351,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
             else:
                 sig = signal_for(metric, pipeline, stage_id, info)
                 assert sig is not None
-                group.rules.extend(sig.recording())
+                group.target(sig).extend(sig.recording())
                 _signal_alerts(sig, metric, owner, group)
                 fams = sig.families()
             for fam in fams:
@@ -413,6 +434,14 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
              "What each stage must emit for the exported rules to work. Every series carries the labels `pipeline` "
              "and `stage`; per-check series also carry `check` (the plan metric id). Reference gauges are "
              "published from calibrated reference data; `stagewatch_check_statistic` by the data checks.", "",
+             "**Create every series at 0 when the stage starts**: every `bin` of "
+             "`stagewatch_check_bin_items_total` (every bin edge and every category the reference knows), every "
+             "counter of every check. A counter that first appears with its first item loses that item to "
+             "`increase()`; the rules read a bin whose series was never created as an empty bin, but only while "
+             "its reference share is published.", "",
+             "**PSI reference shares are smoothed**: publish (count + 0.5) / (total + 0.5 x bins) per bin, the "
+             "shares `stagewatch.stats.smoothed_shares` gives; the rules add the same 0.5 to every window count, so "
+             "the exported PSI equals the plan's PSI on the same counts.", "",
              "| Metric | Type | Labels | What it is |", "|---|---|---|---|"]
     for fam in instr["families"]:
         lines.append(f"| `{fam['name']}` | {fam['type']} | {', '.join(fam['labels'])} | {fam['help']} |")
@@ -451,10 +480,9 @@ def export_prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] =
     out = Path(target)
     files: dict[Path, str] = {}
     for group in built.groups:
-        if not group.rules:
+        if not group.all_rules():
             continue
-        files[out / "rules" / group.file] = RULES_HEADER + yamlio.dump({"groups": [{"name": group.name,
-                                                                                   "rules": group.rules}]})
+        files[out / "rules" / group.file] = RULES_HEADER + yamlio.dump({"groups": group.rule_groups()})
         # One test file per sample step: promtool evaluates every rule of the file at each evaluation_interval up
         # to the last eval_time, so a day-long window is tested at a coarse step and a 5m window at 1m.
         by_step = group.tests()
@@ -473,7 +501,8 @@ def export_prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] =
     safe_write_all(files, inputs=inputs)
     alerts = sum(g.alerts for g in built.groups)
     checked = sum(len(t["alert_rule_test"]) for g in built.groups for ts in g.tests().values() for t in ts)
-    return [f"wrote {out / 'rules'}/: {sum(1 for g in built.groups if g.rules)} rule groups, {alerts} alerting rules",
+    return [f"wrote {out / 'rules'}/: {sum(len(g.rule_groups()) for g in built.groups)} rule groups, "
+            f"{alerts} alerting rules",
             f"wrote {out / 'tests'}/: promtool unit tests, {checked} alert evaluations (run: promtool test rules "
             f"{out / 'tests'}/*.yml)",
             f"wrote {out / 'alertmanager.yml'}: routing by owner and severity, "

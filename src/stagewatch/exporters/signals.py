@@ -16,9 +16,13 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Sequence
 
-from stagewatch import durations
+from stagewatch import durations, stats
 
-SMOOTH = 1e-4  # floor for shares inside ln(): an empty bin counts as a share of 1e-4
+SMOOTH = 1e-4  # floor for reference shares of a category mix, so that the division by them stays finite
+PSI_SMOOTHING = stats.PSI_SMOOTHING  # added to every bin count before PSI takes shares, as stats.psi does
+# A guard only: smoothed reference shares are never 0, but a reference published unsmoothed would make ln() infinite.
+# Far below any smoothed share of a realistic reference (0.5 / (items + 0.5 bins) reaches 1e-9 at 5e8 items).
+PSI_REFERENCE_FLOOR = 1e-9
 BINS_DEFAULT = 10
 
 
@@ -193,7 +197,15 @@ class CountSignal(Signal):
 
 
 class BinSignal(Signal):
-    """PSI or category-mix effect size w from per-bin counters and reference shares, in PromQL."""
+    """PSI or category-mix effect size w from per-bin counters and reference shares, in PromQL.
+
+    PSI is the plan's PSI (:func:`stagewatch.stats.psi`): every window count gets ``PSI_SMOOTHING`` (+0.5) before
+    the shares are taken, and the reference gauge holds the reference's shares smoothed the same way, so an empty
+    bin is a finite share and a bin that empties completely still counts. A bin whose counter series was never
+    created reads as an empty bin (``or`` with the reference-share series times 0), as long as the check has any
+    bin series at all. The category mix needs no smoothing (no logarithm); only its reference share is floored at
+    ``SMOOTH`` so that the division stays finite.
+    """
 
     @property
     def bins(self) -> int:
@@ -206,35 +218,53 @@ class BinSignal(Signal):
     def recording(self):
         s = _sel(self.pipeline, self.stage, self.check)
         w = self.window
-        share = (f"clamp_min(\n  sum by (pipeline, stage, check, bin) (increase(stagewatch_check_bin_items_total{s}[{w}]))\n"
-                 f"  / on (pipeline, stage, check) group_left\n"
-                 f"  sum by (pipeline, stage, check) (increase(stagewatch_check_bin_items_total{s}[{w}])),\n"
-                 f"  {SMOOTH})")
-        ref = f"clamp_min(sum by (pipeline, stage, check, bin) (stagewatch_reference_share{s}), {SMOOTH})"
-        rules = [{"record": "stagewatch:check_bin_share", "expr": share, "labels": {"check": self.check}},
+        by_bin = "pipeline, stage, check, bin"
+        by_check = "pipeline, stage, check"
+        increase = f"increase(stagewatch_check_bin_items_total{s}[{w}])"
+        counts = (f"sum by ({by_bin}) ({increase})\n"
+                  f"  or on ({by_bin})\n"
+                  f"  (sum by ({by_bin}) (stagewatch_reference_share{s}) * 0\n"
+                  f"   and on ({by_check}) sum by ({by_check}) ({increase}))")
+        c = f"stagewatch:check_bin_items{s}"
+        if self.metric["statistic"] == "psi":
+            # (c_i + 0.5) / sum_j (c_j + 0.5), as stats.smoothed_shares.
+            share = (f"({c} + {PSI_SMOOTHING:g})\n  / on ({by_check}) group_left\n"
+                     f"  sum by ({by_check}) ({c} + {PSI_SMOOTHING:g})")
+            ref = f"clamp_min(sum by ({by_bin}) (stagewatch_reference_share{s}), {PSI_REFERENCE_FLOOR:g})"
+        else:
+            share = f"{c}\n  / on ({by_check}) group_left\n  sum by ({by_check}) ({c})"
+            ref = f"clamp_min(sum by ({by_bin}) (stagewatch_reference_share{s}), {SMOOTH})"
+        rules = [{"record": "stagewatch:check_bin_items", "expr": counts, "labels": {"check": self.check}},
+                 {"record": "stagewatch:check_bin_share", "expr": share, "labels": {"check": self.check}},
                  {"record": "stagewatch:check_bin_reference", "expr": ref, "labels": {"check": self.check}}]
         a = f"stagewatch:check_bin_share{s}"
         e = f"stagewatch:check_bin_reference{s}"
         if self.metric["statistic"] == "psi":
-            value = (f"sum by (pipeline, stage, check) (\n  ({a} - on (pipeline, stage, check, bin) {e})\n"
-                     f"  * on (pipeline, stage, check, bin) ln({a} / on (pipeline, stage, check, bin) {e})\n)")
+            value = (f"sum by ({by_check}) (\n  ({a} - on ({by_bin}) {e})\n"
+                     f"  * on ({by_bin}) ln({a} / on ({by_bin}) {e})\n)")
         else:
-            value = (f"sqrt(sum by (pipeline, stage, check) (\n  ({a} - on (pipeline, stage, check, bin) {e}) ^ 2\n"
-                     f"  / on (pipeline, stage, check, bin) {e}\n))")
+            value = (f"sqrt(sum by ({by_check}) (\n  ({a} - on ({by_bin}) {e}) ^ 2\n"
+                     f"  / on ({by_bin}) {e}\n))")
         rules.append({"record": "stagewatch:check_value", "expr": value, "labels": {"check": self.check}})
         return rules
 
     def value_expr(self):  # pragma: no cover - recording() builds the chain
         return self.recording()[-1]["expr"]
 
-    def shares_for(self, value: float) -> list[float]:
-        """Window shares whose statistic against uniform reference shares equals ``value``."""
+    def reference_shares(self) -> list[float]:
+        """The reference shares the rule tests publish (and the plan assumes until calibrated): uniform."""
+        return [1 / self.bins] * self.bins
+
+    def shares_for(self, value: float, items: float) -> list[float]:
+        """Window shares whose statistic on ``items`` window items against the reference equals ``value``."""
         b = self.bins
-        ref = [1 / b] * b
+        ref = self.reference_shares()
+
+        def shares(lam: float) -> list[float]:
+            return [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
 
         def stat(lam: float) -> float:
-            shares = [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
-            return statistic_of(self.metric["statistic"], shares, ref)
+            return statistic_of(self.metric["statistic"], [items * x for x in shares(lam)], ref)
 
         if value <= 0:
             return ref
@@ -242,33 +272,40 @@ class BinSignal(Signal):
         for _ in range(100):
             mid = (lo + hi) / 2
             lo, hi = (mid, hi) if stat(mid) < value else (lo, mid)
-        lam = (lo + hi) / 2
-        return [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
+        return shares((lo + hi) / 2)
 
     def simulate(self, value, steps, start, step_s):
         b = self.bins
-        ref = [1 / b] * b
-        fault = self.shares_for(value) if value is not None else ref
+        ref = self.reference_shares()
+        per_step = 1000.0
+        window_items = per_step * durations.parse(self.window) / step_s
+        fault = self.shares_for(value, window_items) if value is not None else ref
         out = Series()
         for i in range(b):
             labels = f'{self.check_labels}, bin="{i}"'
-            per = [1000.0 * (ref[i] if value is None or t < start else fault[i]) for t in range(steps)]
+            per = [per_step * (ref[i] if value is None or t < start else fault[i]) for t in range(steps)]
             out.add(f"stagewatch_check_bin_items_total{{{labels}}}", counter(per))
             out.add(f"stagewatch_reference_share{{{labels}}}", [ref[i]] * steps)
         return out
 
     def feasible(self, value):
-        top = statistic_of(self.metric["statistic"], [1.0] + [0.0] * (self.bins - 1), [1 / self.bins] * self.bins)
+        top = statistic_of(self.metric["statistic"], [1e9] + [0.0] * (self.bins - 1), self.reference_shares())
         return 0 <= value < top
 
 
-def statistic_of(statistic: str, shares: list[float], reference: list[float]) -> float:
-    """The value the PromQL above computes, for the same shares (with the same smoothing)."""
-    a = [max(x, SMOOTH) for x in shares]
-    e = [max(x, SMOOTH) for x in reference]
+def statistic_of(statistic: str, counts: Sequence[float], reference: Sequence[float]) -> float:
+    """The value the PromQL above computes from window ``counts`` and reference shares, with the same smoothing.
+
+    For PSI this is :func:`stagewatch.stats.psi` with ``PSI_SMOOTHING`` when ``reference`` holds the reference's
+    smoothed shares.
+    """
     if statistic == "psi":
-        return sum((x - y) * math.log(x / y) for x, y in zip(a, e))
-    return math.sqrt(sum((x - y) ** 2 / y for x, y in zip(a, e)))
+        total = sum(counts) + PSI_SMOOTHING * len(counts)
+        a = [(x + PSI_SMOOTHING) / total for x in counts]
+        return sum((x - y) * math.log(x / y) for x, y in zip(a, reference))
+    total = sum(counts)
+    e = [max(x, SMOOTH) for x in reference]
+    return math.sqrt(sum((x / total - y) ** 2 / y for x, y in zip(counts, e)))
 
 
 class GaugeStatisticSignal(Signal):
