@@ -38,6 +38,13 @@ def test_rules_fire_on_data_side_series_and_stay_quiet_on_healthy_ones(tmp_path,
     assert main(["propose", str(write("pipeline.yaml", COLD_STORE)), "-o", str(plan_path)]) == 0
     plan = yaml.safe_load(plan_path.read_text())
     export_prometheus(plan, str(tmp_path / "export"))
+    # Sized checks are evaluated once per window (group interval = window); a test cannot wait an hour, so the
+    # server evaluates every group each second here (test_export checks that the intervals are written).
+    for path in (tmp_path / "export" / "rules").glob("*.yml"):
+        rules = yaml.safe_load(path.read_text())
+        for group in rules["groups"]:
+            group.pop("interval", None)
+        path.write_text(yaml.safe_dump(rules, sort_keys=False))
     changes = {("probe", "temp_c"): (T0 + 13 * 86400, lambda v: v + 3.0)}
     paths = write_declared_logs(plan, tmp_path / "logs", changes=changes)
     capsys.readouterr()
