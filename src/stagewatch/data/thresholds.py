@@ -4,9 +4,11 @@ Replaying the reference against its own baseline gives, for every evaluation win
 sample size. Each statistic is put on its independent-item scale (n_eff PSI and n_eff w^2 against chi-square,
 sqrt(n_eff) D against the Kolmogorov law, a share, mean or count change in standard errors against the normal
 law); the ratio of the observed spread to the independent-item spread is the check's **dispersion** c (1 when
-items are independent; the long-run variance ratio (1 + phi) / (1 - phi) for AR(1) items). Its uncertainty comes
-from resampling whole days of windows with replacement (a block bootstrap: cycles and autocorrelation within a
-day are kept, never items resampled one by one), and the upper 90% of the resampled c is used. The threshold is
+items are independent; the long-run variance ratio (1 + phi) / (1 - phi) for AR(1) items), reported by moments.
+For the threshold, whole days of windows are resampled with replacement (a block bootstrap: cycles and
+autocorrelation within a day are kept, never items resampled one by one), each resample's c taken as the largest
+of the moment estimate and those that match its 95th and 99th percentiles (so a tail heavier than the law's, as
+with small counts, raises it), and the upper 90% of the resampled c is used. The threshold is
 then the value whose false-alarm probability, averaged over the reference's own windows (busy hours and quiet
 nights alike, each with its own n), equals the alpha the plan gave the check.
 """
@@ -61,15 +63,23 @@ def normalized(law: str, values: np.ndarray, scale: np.ndarray) -> np.ndarray:
     return values / scale
 
 
-def dispersion(law: str, z: np.ndarray, df: int) -> float:
-    """Observed spread over the independent-item spread (method of moments)."""
+def dispersion(law: str, z: np.ndarray, df: int, tail: bool = False) -> float:
+    """Observed spread over the independent-item spread by moments; with ``tail``, the largest of that and the
+    estimates that match the 95th and (with 200 windows or more) the 99th percentile, so that a tail heavier than
+    the law's (small counts, bursts) raises the threshold too."""
     if z.size == 0:
         return float("nan")
+    levels = ([0.95] + ([0.99] if z.size >= 200 else [])) if tail else []
     if law in ("chi2", "chi2w"):
-        return float(np.mean(z) / df)
-    if law == "ks":
-        return float((np.mean(z) / KOLMOGOROV_MEAN) ** 2)
-    return float(np.mean(z**2))
+        estimates = [float(np.mean(z) / df)]
+        estimates += [float(np.quantile(z, q) / st.chi2.ppf(q, df)) for q in levels]
+    elif law == "ks":
+        estimates = [float((np.mean(z) / KOLMOGOROV_MEAN) ** 2)]
+        estimates += [float((np.quantile(z, q) / st.kstwobign.ppf(q)) ** 2) for q in levels]
+    else:
+        estimates = [float(np.mean(z**2))]
+        estimates += [float((np.quantile(np.abs(z), q) / st.norm.ppf((1 + q) / 2)) ** 2) for q in levels]
+    return max(estimates)
 
 
 def exceed(law: str, threshold: float, scale: np.ndarray, c: float, df: int, direction: str) -> np.ndarray:
@@ -98,8 +108,8 @@ def fit(metric: dict[str, Any], ref: dict[str, Any], values: np.ndarray, n: np.n
     days = np.unique(day)
     rng = np.random.default_rng(SEED)
     groups = [z[day == d] for d in days]
-    resampled = [dispersion(law, np.concatenate([groups[i] for i in rng.integers(0, len(groups), len(groups))]), df)
-                 for _ in range(BOOTSTRAP)]
+    resampled = [dispersion(law, np.concatenate([groups[i] for i in rng.integers(0, len(groups), len(groups))]), df,
+                            tail=True) for _ in range(BOOTSTRAP)]
     c_point = dispersion(law, z, df)
     c = max(float(np.quantile(resampled, UPPER)), 1e-9)
     direction = metric.get("direction", "above")
