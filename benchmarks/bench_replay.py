@@ -9,11 +9,9 @@ a test. Run with `make bench` (or `python benchmarks/bench_replay.py [SAMPLE]`).
 from __future__ import annotations
 
 import json
-import resource
 import subprocess
 import sys
 import tempfile
-import time
 from pathlib import Path
 
 STEP = r'''

@@ -8,7 +8,6 @@ from pathlib import Path
 import duckdb
 import pytest
 
-from stagewatch.data.baseline import calibrate
 from stagewatch.data.check import run_check
 from stagewatch.demo import run_demo
 from stagewatch.demo_logs import CHANGE, iso

@@ -15,12 +15,14 @@ from typing import Any, Sequence
 from sqlglot import exp
 
 DIALECT = "duckdb"
+# A sqlglot expression. sqlglot's typed classes (Func, Condition ...) do not all meet in one base class for mypy.
+Expr = Any
 
 
 @dataclass(frozen=True)
 class Aggregate:
     key: str
-    expr: exp.Expression
+    expr: Expr
 
 
 def col(name: str) -> exp.Column:
@@ -46,12 +48,12 @@ def text(name: str) -> exp.Expression:
     return exp.cast(col(name), "VARCHAR")
 
 
-def finite(value: exp.Expression) -> exp.Expression:
+def finite(value: Expr) -> Expr:
     return exp.and_(value.is_(exp.null()).not_(),
                     exp.func("isfinite", value.copy()))
 
 
-def count_if(condition: exp.Expression) -> exp.Expression:
+def count_if(condition: Expr) -> Expr:
     return exp.func("sum", exp.Case(ifs=[exp.If(this=condition, true=exp.Literal.number(1))],
                                     default=exp.Literal.number(0)))
 
@@ -60,10 +62,10 @@ def rows() -> exp.Expression:
     return exp.Count(this=exp.Star())
 
 
-def bin_conditions(value: exp.Expression, edges: Sequence[float]) -> list[exp.Expression]:
+def bin_conditions(value: Expr, edges: Sequence[float]) -> list[Expr]:
     """One condition per bin of ``edges`` (len(edges) + 1 bins), finite values only."""
     ok = finite(value)
-    out: list[exp.Expression] = []
+    out: list[Expr] = []
     bounds = [None, *edges, None]
     for low, high in zip(bounds[:-1], bounds[1:]):
         parts = [ok.copy()]
@@ -75,18 +77,18 @@ def bin_conditions(value: exp.Expression, edges: Sequence[float]) -> list[exp.Ex
     return out
 
 
-def category_conditions(value: exp.Expression, categories: Sequence[str]) -> list[exp.Expression]:
+def category_conditions(value: Expr, categories: Sequence[str]) -> list[Expr]:
     """One condition per known category, then one for any other non-null value."""
-    out: list[exp.Expression] = [exp.EQ(this=value.copy(), expression=lit(c)) for c in categories]
+    out: list[Expr] = [exp.EQ(this=value.copy(), expression=lit(c)) for c in categories]
     known = exp.In(this=value.copy(), expressions=[lit(c) for c in categories]) if categories else exp.false()
     out.append(exp.and_(value.copy().is_(exp.null()).not_(), exp.not_(known)))
     return out
 
 
-def select(view: str, aggregates: Sequence[Aggregate], *, bucket: exp.Expression | None = None,
-           where: exp.Expression | None = None) -> exp.Select:
+def select(view: str, aggregates: Sequence[Aggregate], *, bucket: Expr | None = None,
+           where: Expr | None = None) -> exp.Select:
     """``SELECT [bucket,] agg AS a0, agg AS a1 ... FROM view [WHERE] [GROUP BY bucket]``."""
-    items: list[exp.Expression] = []
+    items: list[Expr] = []
     if bucket is not None:
         items.append(exp.alias_(bucket, "bucket"))
     items.extend(exp.alias_(a.expr, f"a{i}") for i, a in enumerate(aggregates))
@@ -98,5 +100,5 @@ def select(view: str, aggregates: Sequence[Aggregate], *, bucket: exp.Expression
     return query
 
 
-def sql(expression: exp.Expression, dialect: str = DIALECT) -> str:
+def sql(expression: Expr, dialect: str = DIALECT) -> str:
     return expression.sql(dialect=dialect)

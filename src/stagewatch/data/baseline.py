@@ -76,8 +76,8 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
     if not hours:
         raise StagewatchError("no rows in the reference period", file=source.pattern,
                               expected="logs whose timestamps fall between --from and --to")
-    first_h = int(math.floor(lo / 3600)) if start is not None else min(hours)
-    last_h = int(math.ceil(hi / 3600)) - 1 if end is not None else max(hours)
+    first_h = int(math.floor(lo / 3600)) if start is not None and lo is not None else min(hours)
+    last_h = int(math.ceil(hi / 3600)) - 1 if end is not None and hi is not None else max(hours)
     numeric_columns = {c for c in source.columns if source.is_numeric(c)}
     measures: dict[str, Measure] = {}
     missing: dict[str, list[str]] = {}

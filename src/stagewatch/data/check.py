@@ -103,7 +103,7 @@ def expected_rows(stage_ref: dict[str, Any], start: float, end: float) -> float 
         hour = math.floor(t / 3600.0)
         upto = min(end, (hour + 1) * 3600.0)
         rate = by_how[hour_of_week(hour)]
-        total += (rate if rate is not None else flat) * (upto - t) / 3600.0
+        total += (rate if rate is not None else (flat or 0.0)) * (upto - t) / 3600.0
         t = upto
     return total
 
@@ -262,8 +262,8 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
     moment = sources.parse_time(at, "--at")
     if moment is None:
         lasts = [scan.time_range(con, s)[1] for s in opened]
-        lasts = [t for t in lasts if t is not None]
-        moment = max(lasts) if lasts else None
+        found = [t for t in lasts if t is not None]
+        moment = max(found) if found else None
     rows: list[CheckRow] = []
     for source in opened:
         if progress:

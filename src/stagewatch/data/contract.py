@@ -137,7 +137,7 @@ def columns_of(reads: dict[str, Any]) -> list[str]:
 
 def in_log(metric: dict[str, Any]) -> bool:
     """Whether ``check`` computes this metric from a log (input and output checks with a ``reads`` key)."""
-    reads = metric.get("reads")
+    reads = metric.get("reads") or {}
     return bool(reads) and reads.get("measured_in", "log") != SERVICE and metric.get("layer") in ("input", "output")
 
 

@@ -15,6 +15,7 @@ from typing import Any
 from sqlglot import exp
 
 from stagewatch.data import aggregates as ag
+from stagewatch.data.aggregates import Expr
 from stagewatch.data.sources import TS, Source, parse_time
 from stagewatch.errors import StagewatchError
 
@@ -75,7 +76,7 @@ def apply(con: Any, source: Source, injection: Injection, reference: dict[str, A
     after = exp.GTE(this=exp.column(TS), expression=ag.lit(injection.at))
     value = ag.number(injection.column) if injection.kind in ("shift", "scale") else ag.col(injection.column)
     where = None
-    changed: exp.Expression | None = None
+    changed: Expr | None = None
     if injection.kind in ("shift", "scale"):
         mean, sd = reference.get("mean"), reference.get("sd")
         if mean is None or not sd:
@@ -97,7 +98,7 @@ def apply(con: Any, source: Source, injection: Injection, reference: dict[str, A
                                        true=exp.null())], default=value)
     else:
         where = exp.not_(exp.and_(after.copy(), exp.LT(this=_draw(), expression=ag.lit(injection.number))))
-    items: list[exp.Expression] = [exp.Star()]
+    items: list[Expr] = [exp.Star()]
     if changed is not None:
         new = exp.Case(ifs=[exp.If(this=after.copy(), true=changed)], default=ag.col(injection.column))
         star = exp.Star(**{"replace": [exp.alias_(new, injection.column, quoted=True)]})

@@ -18,6 +18,7 @@ from sqlglot import exp
 
 from stagewatch import stats
 from stagewatch.data import aggregates as ag
+from stagewatch.data.aggregates import Expr
 
 KS_BINS = 100  # reference-quantile bins for a binned KS: binning error at most ~0.01 (stats.ks_binning_error)
 MAX_CATEGORIES_SEEN = 1000  # categories remembered per column for the "unseen" check
@@ -101,7 +102,7 @@ class Measure:
         return {}
 
     # --- counts ------------------------------------------------------------------------------------------
-    def _condition(self, ref: dict[str, Any]) -> tuple[exp.Expression, exp.Expression | None]:
+    def _condition(self, ref: dict[str, Any]) -> tuple[Expr, Expr | None]:
         """(the rows counted, the rows that form the denominator; None: every row)."""
         c = self.condition
         if c in ("missing",):
@@ -147,7 +148,7 @@ class Measure:
             a, b = self.column, self.reads["other_column"]
             both = exp.and_(ag.col(a).is_(exp.null()).not_(), ag.col(b).is_(exp.null()).not_())  # type: ignore[arg-type]
             if a in self.numeric_columns:  # a score against a label on the same scale: wrong side of 0.5
-                differ: exp.Expression = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a), expression=ag.number(b)))),  # type: ignore[arg-type]
+                differ: Expr = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a), expression=ag.number(b)))),  # type: ignore[arg-type]
                                                  expression=ag.lit(0.5))
             else:
                 differ = exp.NEQ(this=ag.text(a), expression=ag.text(b))  # type: ignore[arg-type]

@@ -61,7 +61,7 @@ def injection_lines(result: ReplayResult, plan: dict[str, Any]) -> list[str]:
 
 
 def to_json(result: ReplayResult, plan: dict[str, Any]) -> str:
-    doc = {"from": format_time(result.start), "to": format_time(result.end), "cadence": result.cadence,
+    doc: dict[str, Any] = {"from": format_time(result.start), "to": format_time(result.end), "cadence": result.cadence,
            "weeks": round(result.weeks, 4),
            "pipeline": {"pages_per_week": round(result.pages_per_week(), 4),
                         "tickets_per_week": round(result.tickets_per_week(), 4),
@@ -124,7 +124,6 @@ def to_markdown(result: ReplayResult, plan: dict[str, Any]) -> str:
 
 def print_table(result: ReplayResult, plan: dict[str, Any], console: Any = None) -> None:
     from rich import box
-    from rich.console import Console
     from rich.markup import escape
     from rich.table import Table
 

@@ -111,7 +111,6 @@ def make_console() -> Any:
 
 def print_table(result: CheckResult, console: Any = None, only_alerts: bool = False) -> None:
     from rich import box
-    from rich.console import Console
     from rich.markup import escape
     from rich.table import Table
 

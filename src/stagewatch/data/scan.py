@@ -11,6 +11,7 @@ from typing import Any, Sequence
 from sqlglot import exp
 
 from stagewatch.data import aggregates as ag
+from stagewatch.data.aggregates import Expr
 from stagewatch.data.sources import TS, Source
 
 Counts = dict[str, float]
@@ -20,9 +21,9 @@ def ts() -> exp.Expression:
     return exp.column(TS)
 
 
-def period(start: float | None, end: float | None) -> exp.Expression | None:
+def period(start: float | None, end: float | None) -> Expr | None:
     """``start < t <= end`` (either side may be open)."""
-    parts: list[exp.Expression] = [ts().is_(exp.null()).not_()]
+    parts: list[Expr] = [ts().is_(exp.null()).not_()]
     if start is not None:
         parts.append(exp.GT(this=ts(), expression=ag.lit(float(start))))
     if end is not None:
@@ -75,11 +76,11 @@ def hourly(con: Any, source: Source, start: float | None, end: float | None) -> 
     return {int(h): int(n) for h, n in con.execute(ag.sql(query)).fetchall()}
 
 
-def profile(con: Any, source: Source, numeric: dict[str, tuple[exp.Expression, list[float]]],
+def profile(con: Any, source: Source, numeric: dict[str, tuple[Expr, list[float]]],
             categorical: list[str], start: float | None, end: float | None, limit: int) -> dict[str, Any]:
     """Quantiles, moments and ranges of numeric expressions; category frequencies of text columns."""
     out: dict[str, Any] = {}
-    items: list[exp.Expression] = []
+    items: list[Expr] = []
     names = list(numeric)
     for name in names:
         value, probs = numeric[name]
