@@ -109,3 +109,16 @@ def test_bad_injections_give_one_message(store, capsys, bad, expected):
     capsys.readouterr()
     assert main(["replay", str(plan), "--baseline", str(base), *data_args(paths), *PERIOD, "--inject", bad]) == 2
     assert expected in capsys.readouterr().err
+
+
+def test_several_sizes_print_a_detection_delay_table(store, capsys):
+    plan, base, paths = store
+    at = format_time(T0 + 13 * DAY + 3 * 3600)
+    capsys.readouterr()
+    code = main(["replay", str(plan), "--baseline", str(base), *data_args(paths), "--from",
+                 format_time(T0 + 12 * DAY), "--to", format_time(T0 + 14 * DAY), "--format", "json",
+                 "--inject", f"probe.temp_c=shift:0.5,1,3@{at}"])
+    rows = json.loads(capsys.readouterr().out)
+    assert code == 0 and [r["change"].split(":")[1].split("@")[0] for r in rows] == ["0.5", "1", "3"]
+    delays = [r["detection_delay_s"]["probe.input.level_shift"] for r in rows]
+    assert delays[2] is not None and all(d is None or d >= delays[2] for d in delays)

@@ -107,3 +107,25 @@ def test_thresholds_from_data_keep_the_budget_out_of_sample_on_a_daily_cycle(tmp
     assert results["from data"]["pages_per_week"] * 2 <= 6
     assert results["from data"]["tickets_per_week"] * 2 <= 18
     assert results["conventional"]["tickets_per_week"] * 2 > 18
+
+
+@pytest.mark.parametrize("mode", ["raise", "replace"])
+def test_thresholds_from_data_never_lower_a_threshold_unless_the_description_asks(plan, tmp_path, mode):
+    log = _ar1_log(tmp_path / "iid.parquet", 0.5, seed=3, shuffle=True)
+    fitted = _dispersion(plan, tmp_path, log)
+    description = tmp_path / "pipeline.yaml"
+    text = COLD_STORE if mode == "raise" else COLD_STORE.replace("context: business",
+                                                                 "context: business\nthresholds_from_data: replace")
+    description.write_text(text)
+    out = tmp_path / "tuned.yaml"
+    assert main(["propose", str(description), "-o", str(out), "--baseline", str(tmp_path / "base")]) == 0
+    tuned = next(m for s in yaml.safe_load(out.read_text())["stages"] for m in s["metrics"] if m["id"] == LEVEL)
+    conventional = 0.5  # the catalog's critical for a level shift, in reference standard deviations
+    assert fitted["critical"] < conventional  # 400 independent items an hour: the data needs much less
+    if mode == "raise":
+        assert tuned["critical"] == conventional
+    else:
+        from stagewatch.sizing import round_up
+
+        assert tuned["critical"] == round_up(fitted["critical"], 2) < conventional  # rounded up, 2 figures
+    assert tuned["sizing"]["from_data"]["day_blocks"] == 14

@@ -121,6 +121,12 @@ def _replay(args: argparse.Namespace) -> int:
     data = parse_data_args(args.data)
     inputs = _inputs(args, data)
     _guard(args.output, inputs)
+    if args.inject:
+        from stagewatch.data.inject import sizes
+
+        changes = sizes(args.inject)
+        if len(changes) > 1:
+            return _delay_table(args, data, changes, inputs)
     with _progress(len(data)) as step:
         result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
                             time_column=args.time_column, injection=args.inject, progress=step)
@@ -138,6 +144,29 @@ def _replay(args: argparse.Namespace) -> int:
         else:
             sys.stdout.write(text)
     return exit_code(result)
+
+
+def _delay_table(args: argparse.Namespace, data: dict[str, str], changes: list[str], inputs: list[str]) -> int:
+    """``--inject`` with several sizes: replay once per size and print the detection delay of each check."""
+    from stagewatch import yamlio
+    from stagewatch.data import replay_report
+    from stagewatch.data.replay import affected, run_replay
+    from stagewatch.errors import EXIT_OK
+    from stagewatch.plan import load_plan
+
+    plan, _ = load_plan(args.plan)
+    rows = []
+    for change in changes:
+        with _progress(len(data)) as step:
+            result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
+                                time_column=args.time_column, injection=change, progress=step)
+        rows.append((change, {c.id: c.detection_delay_s for c in affected(result, plan)}))
+    text = replay_report.delay_table(rows, "json" if args.format == "json" else "markdown")
+    if args.output:
+        yamlio.write_atomic(args.output, text, inputs=inputs)
+    else:
+        sys.stdout.write(text)
+    return EXIT_OK
 
 
 def add_parsers(sub: Any) -> None:
@@ -186,7 +215,8 @@ def add_parsers(sub: Any) -> None:
     p.add_argument("--cadence", choices=("tumbling", "1m"), default="tumbling",
                    help="tumbling (default, as the export evaluates sized checks) or 1m (sliding, every minute)")
     p.add_argument("--inject", metavar="STAGE.COLUMN=KIND:SIZE@T",
-                   help="a change to apply from T: shift:SDs, scale:factor, swap:a/b, missing:share, volume:share")
+                   help="a change to apply from T: shift:SDs, scale:factor, swap:a/b, missing:share, volume:share; "
+                   "several sizes (shift:0.5,1,2@T) print a table of detection delay by size")
     p.add_argument("--format", choices=("table", "json", "markdown"), default="table")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
     p.set_defaults(func=_replay)

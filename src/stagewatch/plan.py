@@ -206,14 +206,15 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
         if known is not None and metric.get("status") != "stale" and metric.get("window"):
             _apply_sizing(metric, known, budget, refresh=metric_id not in kept)
             if data_thresholds and metric_id not in kept:
-                _apply_data_thresholds(metric, data_thresholds)
+                _apply_data_thresholds(metric, data_thresholds, pipeline.thresholds_from_data == "replace")
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)
     return _assemble(pipeline, graph, merged, kept, existing)
 
 
-def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any]) -> None:
-    """Raise warn and critical to what the reference data needs to hold the check's alpha; never lower them."""
+def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any], replace: bool = False) -> None:
+    """Raise warn and critical to what the reference data needs to hold the check's alpha; never lower them unless
+    the description says ``thresholds_from_data: replace``."""
     fitted = found.get("checks", {}).get(metric["id"])
     if not fitted or fitted.get("signature") != contract.signature(metric):
         return
@@ -223,7 +224,7 @@ def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any]) -> Non
         if current is None or needed is None:
             continue
         value = sizing.round_up(float(needed), 2)
-        if value > current:
+        if value > current or (replace and value < current):
             metric[level] = value
             raised.append(f"{level} {current:g} -> {value:g}")
     if metric.get("warn") is not None and metric.get("critical") is not None and metric["warn"] >= metric["critical"]:
@@ -242,7 +243,8 @@ def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any]) -> Non
                            f"the statistic spreads {fitted['dispersion']:.3g}x as much as with independent items (upper "
                            f"90%: {fitted['dispersion_upper']:.3g}); holding this check's alpha over those windows needs "
                            f"critical >= {note['critical']}" + (f" and warn >= {note['warn']}" if note["warn"] else "")
-                           + ("; raised " + ", ".join(raised) if raised else "; the thresholds already hold it")
+                           + (("; set " if replace else "; raised ") + ", ".join(raised) if raised
+                              else "; the thresholds already hold it")
                            + ".").strip()
 
 

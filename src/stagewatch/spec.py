@@ -90,6 +90,7 @@ class Pipeline:
     context: str = "consumer"
     false_alarms_per_week: float = 1.0
     false_tickets_per_week: float = 5.0
+    thresholds_from_data: str = "raise"
     owner: str | None = None
     description: str | None = None
     source_path: str | None = None
@@ -107,6 +108,8 @@ class Pipeline:
         out["context"] = self.context
         out["false_alarms_per_week"] = self.false_alarms_per_week
         out["false_tickets_per_week"] = self.false_tickets_per_week
+        if self.thresholds_from_data != "raise":
+            out["thresholds_from_data"] = self.thresholds_from_data
         if self.owner is not None:
             out["owner"] = self.owner
         out["stages"] = [s.to_dict() for s in self.stages]
@@ -195,6 +198,7 @@ def from_document(doc: yamlio.Document) -> Pipeline:
         context=context,
         false_alarms_per_week=data.get("false_alarms_per_week", 1),
         false_tickets_per_week=data.get("false_tickets_per_week", 5),
+        thresholds_from_data=data.get("thresholds_from_data", "raise"),
         owner=data.get("owner"),
         description=data.get("description"),
         source_path=doc.path,

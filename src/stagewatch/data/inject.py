@@ -37,6 +37,17 @@ class Injection:
         return float(self.size)
 
 
+def sizes(text: str) -> list[str]:
+    """One change per size when SIZE lists several (``shift:0.5,1,2@T``): a detection-delay table by size."""
+    match = _FORM.match(text.strip())
+    if not match or "," not in match["size"]:
+        return [text]
+    head, tail = text.split("=", 1)
+    kind, rest = tail.split(":", 1)
+    size, at = rest.split("@", 1)
+    return [f"{head}={kind}:{s.strip()}@{at}" for s in size.split(",") if s.strip()]
+
+
 def parse(text: str) -> Injection:
     match = _FORM.match(text.strip())
     expected = "STAGE.COLUMN=KIND:SIZE@T, e.g. load_cell.weight_g=shift:1.5@2026-11-05T06:00Z (kinds: " + \

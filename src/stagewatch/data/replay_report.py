@@ -165,3 +165,16 @@ def print_table(result: ReplayResult, plan: dict[str, Any], console: Any = None)
     if result.attribution:
         for line in attribution_lines(result):  # type: ignore[arg-type]
             console.print(line, markup=False)
+
+
+def delay_table(rows: list[tuple[str, dict[str, float | None]]], fmt_: str) -> str:
+    """Detection delay by change size: one row per size, one column per check that reads the changed column."""
+    checks = sorted({c for _, delays in rows for c in delays})
+    if fmt_ == "json":
+        return json.dumps([{"change": change, "detection_delay_s": delays} for change, delays in rows], indent=2) + "\n"
+    header = ["change", *checks]
+    lines = ["| " + " | ".join(header) + " |", "|" + "---|" * len(header)]
+    for change, delays in rows:
+        lines.append("| " + " | ".join([change.split("=", 1)[1], *(duration_words(delays.get(c)) for c in checks)])
+                     + " |")
+    return "\n".join(lines) + "\n"
