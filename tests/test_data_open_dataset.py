@@ -88,3 +88,36 @@ def test_the_same_season_a_year_later_stays_below_critical(calibrated, capsys):
     # 90 daily rows are too few for a 10-bin PSI: said so, never reported as all clear
     assert checks["weather_station.input.temp_max_drift"]["verdict"] == "insufficient"
     assert code == 4
+
+
+def test_replay_over_a_year_agrees_with_numpy_on_the_raw_file_and_times_an_injected_change(calibrated):
+    import csv
+    from datetime import datetime, timezone
+
+    import numpy as np
+
+    from stagewatch.data.replay import run_replay
+
+    plan, base, data = calibrated
+    path = data[1].split("=", 1)[1]
+    result = run_replay(str(plan), str(base), {"weather_station": path}, start="2012-12-31T12:00",
+                        end="2013-12-31T12:00", time_column="date")
+    level = next(c for c in result.checks if c.id == "weather_station.input.level_shift")
+    assert level.evaluations >= 5 and level.critical_firings >= 1  # the summer, against a winter reference
+    assert level.per_week(level.critical_firings) == pytest.approx(level.critical_firings / (365 / 7), rel=1e-9)
+    with open(path, newline="") as handle:
+        rows = list(csv.DictReader(handle))
+    stamps = np.array([datetime.strptime(r["date"], "%Y/%m/%d").replace(tzinfo=timezone.utc).timestamp()
+                       for r in rows])
+    temp = np.array([float(r["temp_max"]) for r in rows])
+    ref = json.loads((base / "baseline.json").read_text())["baseline"]["stages"]["weather_station"]["checks"][
+        level.id]
+    seconds = {"1d": 86400, "7d": 604800, "30d": 2592000}.get(level.window) or int(level.window[:-1]) * 86400
+    for t, value in zip(level.times, level.values):
+        inside = (stamps > t - seconds) & (stamps <= t)
+        assert value == pytest.approx((temp[inside].mean() - ref["mean"]) / ref["sd"], rel=1e-12)
+    changed = run_replay(str(plan), str(base), {"weather_station": path}, start="2012-12-31T12:00",
+                         end="2013-03-31T12:00", time_column="date",
+                         injection="weather_station.temp_max=shift:5@2013-02-01")
+    shifted = next(c for c in changed.checks if c.id == level.id)
+    assert shifted.detection_delay_s is not None and shifted.detection_delay_s <= seconds
