@@ -95,3 +95,34 @@ def test_check_and_replay_run_the_cusum_a_reviewer_asks_for(tmp_path, capsys):
     doc = json.loads(capsys.readouterr().out)
     delays = doc["injection"]["detection"]
     assert delays[target + "#cusum"] is not None and delays[target + "#cusum"] < 6 * 3600
+
+
+def test_the_prometheus_export_alerts_on_the_cusum_check_publishes(tmp_path):
+    """promtool accepts the rule and its generated test: quiet below S / h = 1, firing at it."""
+    import shutil
+    import subprocess
+
+    import yaml
+
+    from stagewatch.exporters.prometheus import alert_name, export_prometheus
+    from stagewatch.plan import compose
+    from stagewatch.spec import load_pipeline
+    from test_data_check import COLD_STORE
+
+    (tmp_path / "pipeline.yaml").write_text(COLD_STORE)
+    plan = compose(load_pipeline(str(tmp_path / "pipeline.yaml")))
+    target = "spoilage_model.output.risk_unknown"
+    for stage in plan["stages"]:
+        for metric in stage["metrics"]:
+            if metric["id"] == target:
+                metric["sequential"] = {"method": "cusum"}
+    export_prometheus(plan, str(tmp_path / "out"))
+    rules = [r for f in (tmp_path / "out" / "rules").glob("*.yml") for g in yaml.safe_load(f.read_text())["groups"]
+             for r in g["rules"]]
+    cusum = [r for r in rules if r.get("alert") == alert_name(target + "#cusum")]
+    assert cusum and 'check="spoilage_model.output.risk_unknown#cusum"' in " ".join(r.get("expr", "") for r in rules)
+    promtool = shutil.which("promtool")
+    assert promtool, "promtool is installed by `make test` (.ci/install-tools)"
+    files = sorted(str(p) for p in (tmp_path / "out" / "tests").glob("*.yml"))
+    proc = subprocess.run([promtool, "test", "rules", *files], capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stdout[-2000:] + proc.stderr[-2000:]

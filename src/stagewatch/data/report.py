@@ -161,7 +161,9 @@ def to_openmetrics(result: CheckResult, pipeline: str) -> str:
                                labels=["pipeline", "stage", "check"])
     for r in result.rows:
         if r.value is not None and math.isfinite(r.value) and r.verdict not in ("not_measured",):
-            family.add_metric([pipeline, r.stage, r.id], r.value)
+            # a CUSUM is published as S / h, so that the exported alert's limit is 1 whatever h the data gave
+            value = r.value / r.critical if r.statistic == "cusum" and r.critical else r.value
+            family.add_metric([pipeline, r.stage, r.id], value)
     return _exposition([family])
 
 

@@ -325,6 +325,25 @@ class PrometheusExport:
     instrumentation: dict[str, Any]
 
 
+def cusum_view(metric: dict[str, Any]) -> dict[str, Any]:
+    """The alert of a share's sequential option: `stagewatch check` publishes the CUSUM as S / h in
+    ``stagewatch_check_statistic{check="<id>#cusum"}``, so the limit is 1 whatever the data made h."""
+    view = {k: v for k, v in metric.items() if k not in ("sequential", "sizing", "params", "fingerprint", "review")}
+    view.update({"id": f"{metric['id']}#cusum", "statistic": "cusum", "warn": None, "critical": 1.0,
+                 "direction": "above", "unit": "share of the CUSUM limit",
+                 "measure": f"CUSUM of: {metric.get('measure', metric['id'])} (S / h, published by stagewatch check)"})
+    return view
+
+
+def _with_sequential(metrics: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    out = []
+    for metric in metrics:
+        out.append(metric)
+        if metric.get("sequential") and metric["statistic"] in ("proportion", "quantile"):
+            out.append(cusum_view(metric))
+    return out
+
+
 def build(plan: dict[str, Any]) -> PrometheusExport:
     pipeline = plan["pipeline"]
     live = {m["id"] for m in live_metrics(plan)}
@@ -339,8 +358,8 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
             owners.add(owner)
         group = GroupExport(name=f"stagewatch-{pipeline}-{stage_id}", stage=stage_id,
                             file=f"{stage_id}.rules.yml")
-        for metric in metrics:
-            if metric["id"] not in live:
+        for metric in _with_sequential(metrics):
+            if metric["id"].split("#")[0] not in live:
                 continue
             sig = None
             if metric["statistic"] == "burn_rate":

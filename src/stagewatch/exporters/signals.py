@@ -521,7 +521,7 @@ def signal_for(metric: dict[str, Any], pipeline: str, stage: str, stage_info: di
         return CountSignal(*args)
     if statistic in ("psi", "chi_square"):
         return BinSignal(*args)
-    if statistic in ("ks", "mean"):
+    if statistic in ("ks", "mean", "cusum"):  # cusum: S / h published by `stagewatch check`, 1 is the limit
         return GaugeStatisticSignal(*args)
     cls, attrs = _LEVELS.get(metric.get("source", ""), (GaugeLevelSignal, {"family_key": "level"}))
     sig = cls(*args)
