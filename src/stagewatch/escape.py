@@ -106,6 +106,16 @@ def mermaid_label(value: Any) -> str:
     return "".join(_MERMAID.get(ch, ch) for ch in _one_line(value))
 
 
+def matcher_value(value: Any) -> str:
+    r"""A value inside the double quotes of an Alertmanager (or PromQL) matcher: backslash, quote and newline
+    escaped as the matcher grammar reads them.
+
+    >>> print(matcher_value('team "a"'))
+    team \"a\"
+    """
+    return str(value).replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
+
+
 def go_template_literal(value: Any) -> str:
     """Text that a Go template (Prometheus labels and annotations) prints back exactly.
 

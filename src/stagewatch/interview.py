@@ -539,7 +539,8 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
                         expected=expected)
     if description_path.exists() and description_path.read_text(encoding="utf-8") != text:
         previous = description_path.with_name(plan_path.stem + ".pipeline.previous.yaml")
-        description_path.replace(previous)  # never overwrite what may be a hand-edited description
+        # never overwrite what may be a hand-edited description: keep a copy, through the one safe write path
+        yamlio.write_atomic(previous, description_path.read_text(encoding="utf-8"), inputs=[plan_path])
         kept.append(f"kept the earlier description as {previous}")
     yamlio.write_atomic(description_path, text, inputs=sources)
     n = len(all_metrics(plan))

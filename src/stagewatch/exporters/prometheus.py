@@ -18,7 +18,7 @@ import networkx as nx
 from stagewatch import durations, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.errors import StagewatchError
-from stagewatch.escape import go_template_literal, markdown_code, markdown_text
+from stagewatch.escape import go_template_literal, markdown_code, markdown_text, matcher_value
 from stagewatch.names import alert_name
 from stagewatch.names import receivers as receiver_names
 from stagewatch.safewrite import STDOUT, safe_write_all
@@ -48,10 +48,6 @@ def _inert(text: Any) -> str:
 def _templated(values: dict[str, str]) -> dict[str, str]:
     """Label values and annotations as written in a rule: Prometheus expands them as Go templates."""
     return {key: go_template_literal(value) for key, value in values.items()}
-
-
-def _matcher_value(text: str) -> str:
-    return text.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n")
 
 
 def _fmt(x: float) -> str:
@@ -413,9 +409,9 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, An
         if not below:
             continue
         inhibit.append({
-            "source_matchers": [f'pipeline="{_matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
+            "source_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
                                 'level="critical"'],
-            "target_matchers": [f'pipeline="{_matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
+            "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
                                 'drift="true"'],
             "equal": ["pipeline"],
         })
@@ -429,7 +425,7 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, An
             name = f"{receiver_of[owner]}-{severity}"
             receivers.append({"name": name, "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{name}"}]})
             child.append({"receiver": name, "matchers": [f'severity="{severity}"']})
-        routes.append({"receiver": f"{receiver_of[owner]}-ticket", "matchers": [f'owner="{_matcher_value(owner)}"'],
+        routes.append({"receiver": f"{receiver_of[owner]}-ticket", "matchers": [f'owner="{matcher_value(owner)}"'],
                        "routes": child})
     for severity in ("page", "ticket"):
         receivers.append({"name": f"stagewatch-{severity}",
