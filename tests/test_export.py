@@ -24,6 +24,8 @@ from stagewatch.stats import STATISTICS
 from stagewatch.resources import validator
 from stagewatch.spec import load_pipeline
 
+pytestmark = pytest.mark.slow  # promtool, amtool and live servers
+
 
 def _tool(name: str) -> str:
     path = shutil.which(name)

@@ -124,6 +124,9 @@ def stage_columns(stage: str, ts: np.ndarray, rng: np.random.Generator) -> Colum
 def write_logs(plan: dict[str, Any], out_dir: str) -> dict[str, str]:
     """One Parquet file per stage in ``out_dir``; returns stage -> path."""
     import duckdb
+    from sqlglot import exp
+
+    from stagewatch.safewrite import resolve_target
 
     os.makedirs(out_dir, exist_ok=True)
     con = duckdb.connect(":memory:")
@@ -137,13 +140,19 @@ def write_logs(plan: dict[str, Any], out_dir: str) -> dict[str, str]:
             if value.dtype == object:
                 table[key] = np.array([None if v is None else str(v) for v in value], dtype=object)
         path = os.path.join(out_dir, f"{stage['id']}.parquet")
-        tmp = path + ".tmp"
+        real = resolve_target(path)  # through a symlink, never over a FIFO or a device
+        tmp = real.with_name(f".{real.name}.tmp")
         con.register("frame", table)
         columns = ", ".join(f'"{k}"' for k in table if k != "ts_epoch")  # our own fixed column names
-        con.execute(f"COPY (SELECT to_timestamp(ts_epoch) AS timestamp, {columns} FROM frame) TO '{tmp}' "
-                    "(FORMAT parquet)")
-        con.unregister("frame")
-        os.replace(tmp, path)
+        target = exp.Literal.string(str(tmp)).sql(dialect="duckdb")  # a quoted literal, whatever the directory
+        try:
+            con.execute(f"COPY (SELECT to_timestamp(ts_epoch) AS timestamp, {columns} FROM frame) TO {target} "
+                        "(FORMAT parquet)")
+            os.replace(tmp, real)
+        finally:
+            con.unregister("frame")
+            if tmp.exists():
+                tmp.unlink()
         paths[stage["id"]] = path
     return paths
 
