@@ -11,12 +11,14 @@ import time
 import urllib.request
 from pathlib import Path
 
+import numpy as np
 import pytest
 import yaml
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from conftest import all_pipelines
+from stagewatch import durations
 from stagewatch.exporters.checks import checks_document
 from stagewatch.exporters.prometheus import alert_name, build, export_prometheus
 from stagewatch.plan import all_metrics, compose, dump
@@ -347,3 +349,61 @@ def test_statistical_checks_are_evaluated_once_per_window(exported):
                 elif check in windows:
                     assert "interval" not in group, (group["name"], check)
     assert seen == statistical & {m["id"] for m in all_metrics(plan) if m["status"] != "rejected"}
+
+
+def test_a_label_based_check_fires_one_label_delay_after_predictions_change(tmp_path):
+    """Quality counters count labelled items when the label arrives (the instrumentation says so): predictions that
+    go wrong at T reach the counters at T + label delay, and the alert fires after that, not before (promtool)."""
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    export_prometheus(plan, str(tmp_path))
+    metric = next(m for s in plan["stages"] for m in s["metrics"] if m["id"] == "variety_tagger.output.quality")
+    assert metric["on_labels"]
+    instrumentation = (tmp_path / "instrumentation.md").read_text()
+    assert "increment when the label arrives" in instrumentation
+    rules = [r for g in yaml.safe_load((tmp_path / "rules" / "variety_tagger.rules.yml").read_text())["groups"]
+             for r in g["rules"]]
+    alerts = [r for r in rules if r.get("alert") == alert_name(metric["id"])]
+    alert = next(r for r in alerts if r["labels"]["level"] == "critical")
+    assert "label arrives" in alert["annotations"]["counting"]
+    delay = durations.parse("2d")  # the demo's label delay for variety_tagger
+    window = durations.parse(metric["window"])
+    step = 600
+    change = 6 * 3600  # predictions go wrong here
+    arrive = change + delay  # ... and their labels arrive here
+    steps = (arrive + 3 * window) // step
+    labels = f'pipeline="{plan["pipeline"]}", stage="variety_tagger", check="{metric["id"]}"'
+    p0 = 0.05
+    wrong = [p0 if i * step < arrive else min(1.0, p0 + 2 * metric["critical"]) for i in range(steps)]
+    items = [100.0 * i for i in range(steps)]
+    matches = list(np.cumsum([0.0] + [100.0 * w for w in wrong[:-1]]))
+    series = [{"series": f"stagewatch_check_items_total{{{labels}}}", "values": " ".join(f"{v:g}" for v in items)},
+              {"series": f"stagewatch_check_matches_total{{{labels}}}", "values": " ".join(f"{v:g}" for v in matches)},
+              {"series": f"stagewatch_reference_share{{{labels}}}", "values": " ".join([f"{p0:g}"] * steps)}]
+    before, after = arrive - step, arrive + 2 * window
+    test = {"rule_files": [str(tmp_path / "rules" / "variety_tagger.rules.yml")], "evaluation_interval": f"{step}s",
+            "tests": [{"interval": f"{step}s", "input_series": series, "alert_rule_test": [
+                {"eval_time": f"{before}s", "alertname": alert["alert"], "exp_alerts": []},
+                {"eval_time": f"{change + window}s", "alertname": alert["alert"], "exp_alerts": []},
+            ]}]}
+    firing = _run(_tool("promtool"), "test", "rules", str(_write_test(tmp_path, test, after, alerts, labels)))
+    quiet = _run(_tool("promtool"), "test", "rules", str(_write_yaml(tmp_path / "quiet.yml", test)))
+    assert quiet.returncode == 0, quiet.stdout + quiet.stderr
+    assert firing.returncode == 0, firing.stdout + firing.stderr
+
+
+def _write_yaml(path: Path, doc: dict) -> Path:
+    path.write_text(yaml.safe_dump(doc, sort_keys=False))
+    return path
+
+
+def _write_test(tmp_path: Path, test: dict, at: int, alerts: list[dict], labels: str) -> Path:
+    """The same series, now expecting every level of the alert at ``at``, with its labels as exported."""
+    import copy
+
+    doc = copy.deepcopy(test)
+    series = dict(kv.split("=", 1) for kv in labels.replace('"', "").split(", "))
+    expected = [{"exp_labels": {**a["labels"], "alertname": a["alert"], **series}, "exp_annotations": a["annotations"]}
+                for a in alerts]
+    doc["tests"][0]["alert_rule_test"] = [{"eval_time": f"{at}s", "alertname": alerts[0]["alert"],
+                                           "exp_alerts": expected}]
+    return _write_yaml(tmp_path / "firing.yml", doc)

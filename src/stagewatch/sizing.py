@@ -356,8 +356,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                    f"within {durations.format(delay)}")
     if metric.get("_label_delay"):
         delay += durations.parse(metric["_label_delay"])
-        derivation += (f", plus the {metric['_label_delay']} label delay: each window is evaluated "
-                       f"{metric['_label_delay']} after it closes, on labelled items only")
+        derivation += (f", plus the {metric['_label_delay']} label delay: the counters count labelled items when "
+                       "their label arrives, so a change in predictions reaches the window one label delay later")
     derivation += "."
     sizing = {
         "method": "noise floor",

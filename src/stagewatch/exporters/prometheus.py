@@ -135,14 +135,22 @@ def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str
     return labels
 
 
+LABEL_COUNTING = ("counts labelled items when their label arrives, not when the prediction is made: a change in "
+                  "predictions shows here one label delay later")
+
+
 def _annotations(metric: dict[str, Any], level: str, threshold: float) -> dict[str, str]:
-    return {
+    out = {
         "summary": _inert(f"{metric['id']}: {metric.get('measure', '')} beyond {level} threshold "
                           f"{_fmt(threshold)} ({metric.get('unit', '')}) over {metric['window']}"),
         "description": _inert(metric.get("why", "")),
         "first_response": _inert(FIRST_RESPONSE[metric["layer"]]),
         "plan_metric": metric["id"],
     }
+    if metric.get("on_labels"):
+        lag = (metric.get("sizing") or {}).get("evaluation_lag")
+        out["counting"] = _inert(LABEL_COUNTING + (f" ({lag})" if lag else ""))
+    return out
 
 
 def _series_lines(series: Series) -> list[dict[str, str]]:
@@ -380,6 +388,9 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
                     use["bucket_le"] = f"{(info.get('latency_slo_ms') or 0) / 1000:g}"
                 if metric.get("field"):
                     use["field"] = metric["field"]
+                if metric.get("on_labels") and fam.name in ("stagewatch_check_items_total",
+                                                            "stagewatch_check_matches_total"):
+                    use["at_label_arrival"] = True
                 if isinstance(sig, ShareSignal) and fam.name == "stagewatch_reference_share":
                     use["reference_share"] = sig.baseline()
                 entry["uses"].append(use)
@@ -480,6 +491,8 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
                 notes.append(f"field {markdown_code(use['field'])}")
             if "reference_share" in use:
                 notes.append(f"reference share until calibrated: {use['reference_share']:g}")
+            if use.get("at_label_arrival"):
+                notes.append("increment when the label arrives, for labelled items only")
             check = use["check"] if name not in ("stagewatch_requests_total", "stagewatch_request_errors_total",
                                                  "stagewatch_request_duration_seconds") else "(none)"
             lines.append(f"| `{name}` | {markdown_code(check)} | {'; '.join(notes)} |")
