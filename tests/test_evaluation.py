@@ -154,3 +154,32 @@ def test_false_alarms_per_week_under_the_exported_evaluation(statistic):
     rate, low, high = measured_per_week(statistic, metric, block, seed=sorted(CASES).index(statistic))
     assert low <= stated * (1 + TOLERANCE) and high >= stated / (1 + TOLERANCE), (
         f"{statistic}: measured {rate:.3g} per week ({low:.3g}-{high:.3g}), plan states {stated:.3g}")
+
+
+def test_the_demo_plans_stated_false_pages_per_week_hold_under_the_exported_evaluation():
+    """The demo plan's summary line, simulated: every page check whose stated figure is above "< 1e-6" is run on
+    back-to-back windows with no change, long enough to expect about five false pages in all, and the total is
+    compared with the sum the plan states (the "< 1e-6" checks add at most 1e-6 each)."""
+    from stagewatch.demo import DEMO
+    from stagewatch.plan import all_metrics, compose
+    from stagewatch.spec import load_pipeline
+
+    plan = compose(load_pipeline(str(DEMO)))
+    pages = [m for m in all_metrics(plan) if m.get("severity") == "page" and m["statistic"] in CASES
+             and isinstance((m.get("sizing") or {}).get("expected_false_alarms_per_week"), (int, float))
+             and m["sizing"]["expected_false_alarms_per_week"] > 0]
+    stated = sum(m["sizing"]["expected_false_alarms_per_week"] for m in pages)
+    assert pages and stated == pytest.approx(plan["budget"]["expected_false_pages_per_week"], rel=0.02, abs=1e-5)
+    weeks = 5 / stated
+    rng = np.random.default_rng(11)
+    events = 0
+    for m in pages:
+        block = m["sizing"]
+        windows = int(weeks * block["evaluations_per_week"]) // WINDOWS_PER_REFERENCE * WINDOWS_PER_REFERENCE
+        values = window_values(m["statistic"], {"params": m.get("params") or {}}, block["samples_per_window"],
+                               block.get("reference_samples"), windows, rng)
+        events += int(fired(values, m["critical"], m["direction"]).sum())
+    low, high = poisson_interval(events)
+    assert low / weeks <= stated * (1 + TOLERANCE) and high / weeks >= stated / (1 + TOLERANCE), (
+        f"measured {events / weeks:.3g} false pages a week ({low / weeks:.3g}-{high / weeks:.3g}), "
+        f"the plan states {stated:.3g}")
