@@ -80,6 +80,13 @@ def to_json(result: ReplayResult, plan: dict[str, Any]) -> str:
     return json.dumps(doc, indent=2, allow_nan=False, default=lambda x: None) + "\n"
 
 
+def planned(x: float | None) -> str:
+    """A planned rate as the plan shows it: "< 1e-6" where the plan said so (it counts as 1e-6 in sums)."""
+    from stagewatch.sizing import SMALLEST_SHOWN
+
+    return "< 1e-6" if x is not None and 0 < x <= SMALLEST_SHOWN else fmt(x)
+
+
 def factor_words(factor: float | None) -> str:
     if factor is None:
         return ""
@@ -96,7 +103,7 @@ def verdict_words(c: Any, short: bool = False) -> str:
 
 def _row_cells(c: Any, result: ReplayResult) -> list[str]:
     return [c.id, c.window, f"{c.evaluations:,}", str(c.warn_firings), str(c.critical_firings), str(c.episodes),
-            fmt(c.per_week(c.critical_firings)), fmt(c.planned_critical_per_week), verdict_words(c),
+            fmt(c.per_week(c.critical_firings)), planned(c.planned_critical_per_week), verdict_words(c),
             timeline(c.times, c.levels, result.start, result.end)]
 
 
