@@ -585,3 +585,27 @@ def test_hostile_free_text_survives_the_whole_flow_and_every_validator(tmp_path_
     assert test.returncode == 0, test.stdout[-3000:] + test.stderr
     am = _run(_tool("amtool"), "check-config", str(out / "alertmanager.yml"))
     assert am.returncode == 0, am.stdout + am.stderr
+
+
+def test_a_temporary_file_left_by_a_killed_write_is_swept_on_the_next_write(tmp_path):
+    """SIGKILL cannot be caught; the next write of the same target removes what it left (after an hour)."""
+    import os
+    import time
+
+    from stagewatch.safewrite import STALE_TEMP_S, safe_write
+
+    target = tmp_path / "plan.yaml"
+    target.write_text("a: 1\n")
+    stale = tmp_path / ".plan.yaml.abc123.tmp"
+    fresh = tmp_path / ".plan.yaml.def456.tmp"
+    other = tmp_path / ".other.yaml.abc123.tmp"
+    for f in (stale, fresh, other):
+        f.write_text("half a write")
+    old = time.time() - STALE_TEMP_S - 60
+    os.utime(stale, (old, old))
+    os.utime(other, (old, old))
+    safe_write(target, "a: 2\n")
+    assert target.read_text() == "a: 2\n"
+    assert not stale.exists()  # left by a killed write of this target, an hour ago
+    assert fresh.exists()  # perhaps a write in progress right now
+    assert other.exists()  # another file's

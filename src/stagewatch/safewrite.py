@@ -195,7 +195,21 @@ def safe_write(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str 
     return real
 
 
+STALE_TEMP_S = 3600.0  # a temporary file this old was left by a write killed with SIGKILL
+
+
+def _sweep(real: Path) -> None:
+    """Remove temporary files that a killed write of this same target left behind (SIGKILL cannot be caught)."""
+    now = time.time()
+    with contextlib.suppress(OSError):
+        for old in real.parent.glob(f".{real.name}.*.tmp"):
+            with contextlib.suppress(OSError):
+                if now - old.stat().st_mtime > STALE_TEMP_S and old.is_file() and not old.is_symlink():
+                    old.unlink()
+
+
 def _replace(real: Path, shown: str, data: bytes) -> None:
+    _sweep(real)
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{real.name}.", suffix=".tmp", dir=real.parent)
     except OSError as exc:
