@@ -137,52 +137,88 @@ def _start(args: list[str], log: Path) -> subprocess.Popen:
     return subprocess.Popen(args, stdout=log.open("w"), stderr=subprocess.STDOUT)
 
 
-def _alert(plan_id: str, stage: str, level: str, drift: str, pipeline: str, layer: str = "output") -> dict:
-    return {"labels": {"alertname": alert_name(plan_id), "pipeline": pipeline, "stage": stage, "check": plan_id,
-                       "level": level, "severity": "page", "layer": layer, "drift": drift},
-            "annotations": {"summary": plan_id}}
+def _exported(out: Path, plan: dict, check: str, level: str = "critical") -> dict:
+    """The alert Prometheus would send for ``check`` at ``level``: the exported rule's labels plus the series'."""
+    stage = check.split(".", 1)[0]
+    for path in (out / "rules").glob("*.yml"):
+        for group in yaml.safe_load(path.read_text())["groups"]:
+            for rule in group["rules"]:
+                if rule.get("alert") == alert_name(check) and rule["labels"]["level"] == level:
+                    labels = {**rule["labels"], "alertname": rule["alert"], "pipeline": plan["pipeline"],
+                              "stage": stage, "check": check}
+                    return {"labels": labels, "annotations": {"summary": check}}
+    raise AssertionError(f"no {level} alert for {check}")
 
 
-def test_an_upstream_fault_inhibits_downstream_drift_alerts_in_alertmanager(tmp_path):
-    plan = compose(load_pipeline(str(all_pipelines()[0])))
-    export_prometheus(plan, str(tmp_path / "export"))
+def _alertmanager_states(tmp_path: Path, config: Path, alerts: list[dict], settled) -> dict:
+    """Post ``alerts`` to a real Alertmanager on loopback and return each check's status once ``settled``."""
+    tmp_path.mkdir(parents=True, exist_ok=True)
     port, cluster = _free_port(), _free_port()
-    log = tmp_path / "alertmanager.log"
     proc = _start([_tool("prometheus-alertmanager") if shutil.which("prometheus-alertmanager") else
-                   _tool("alertmanager"), f"--config.file={tmp_path / 'export' / 'alertmanager.yml'}",
-                   f"--storage.path={tmp_path / 'am-data'}", f"--web.listen-address=127.0.0.1:{port}",
-                   f"--cluster.listen-address=127.0.0.1:{cluster}", "--cluster.peer-timeout=1s"], log)
+                   _tool("alertmanager"), f"--config.file={config}", f"--storage.path={tmp_path / 'am-data'}",
+                   f"--web.listen-address=127.0.0.1:{port}", f"--cluster.listen-address=127.0.0.1:{cluster}",
+                   "--cluster.peer-timeout=1s"], tmp_path / "alertmanager.log")
     base = f"http://127.0.0.1:{port}"
     try:
         _wait(f"{base}/-/ready", time.monotonic() + 30)
-        pipeline = plan["pipeline"]
-        alerts = [
-            _alert("frame_gate.output.pass_rate", "frame_gate", "critical", "true", pipeline),  # the cause
-            _alert("variety_tagger.output.unknown_share", "variety_tagger", "critical", "true", pipeline),
-            _alert("grade_assigner.input.from_blemish_scorer_drift", "grade_assigner", "critical", "true",
-                   pipeline, "input"),
-            _alert("grade_assigner.software.saturation", "grade_assigner", "critical", "false", pipeline,
-                   "software"),
-        ]
         request = urllib.request.Request(f"{base}/api/v2/alerts", data=json.dumps(alerts).encode(),
                                          headers={"Content-Type": "application/json"}, method="POST")
         urllib.request.urlopen(request, timeout=5).read()
         deadline = time.monotonic() + 30
-        state = {}
+        state: dict = {}
         while time.monotonic() < deadline:
             state = {a["labels"]["check"]: a["status"] for a in _get(f"{base}/api/v2/alerts")}
-            if len(state) == 4 and state["variety_tagger.output.unknown_share"]["inhibitedBy"]:
+            if len(state) == len(alerts) and settled(state):
                 break
             time.sleep(0.3)
-        assert state["frame_gate.output.pass_rate"]["state"] == "active"
-        assert state["variety_tagger.output.unknown_share"]["state"] == "suppressed"
-        assert state["variety_tagger.output.unknown_share"]["inhibitedBy"]
-        assert state["grade_assigner.input.from_blemish_scorer_drift"]["inhibitedBy"]
-        # Not a drift alert: a saturated grade_assigner is its own problem and still pages.
-        assert state["grade_assigner.software.saturation"]["state"] == "active"
+        return state
     finally:
         proc.terminate()
         proc.wait(timeout=10)
+
+
+def test_an_upstream_change_inhibits_downstream_drift_alerts_in_alertmanager(tmp_path):
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    out = tmp_path / "export"
+    export_prometheus(plan, str(out))
+    checks = ["frame_gate.output.pass_rate",  # the cause: the gate passes fewer frames
+              "variety_tagger.input.brightness", "grade_assigner.input.from_blemish_scorer_drift",  # drift below
+              "grade_assigner.software.saturation"]  # not drift: a saturated grade_assigner still pages
+    state = _alertmanager_states(tmp_path, out / "alertmanager.yml", [_exported(out, plan, c) for c in checks],
+                                 lambda s: s["variety_tagger.input.brightness"]["inhibitedBy"])
+    assert state["frame_gate.output.pass_rate"]["state"] == "active"
+    assert state["variety_tagger.input.brightness"]["state"] == "suppressed"  # still listed, marked inhibited
+    assert state["grade_assigner.input.from_blemish_scorer_drift"]["inhibitedBy"]
+    assert state["grade_assigner.software.saturation"]["state"] == "active"
+
+
+def test_inhibition_never_hides_a_contract_or_quality_page_and_a_models_age_hides_nothing(tmp_path):
+    plan = compose(load_pipeline(str(all_pipelines()[0])))
+    out = tmp_path / "export"
+    export_prometheus(plan, str(out))
+    upstream_drift = "variety_tagger.output.to_grade_assigner_mix"
+    below = ["grade_assigner.input.from_variety_tagger_mix",  # drift below: held back
+             "grade_assigner.input.from_variety_tagger_contract",  # a contract break: harm, never held back
+             "grade_assigner.output.quality"]  # label-based quality: harm itself, never held back
+    alerts = [_exported(out, plan, c) for c in [upstream_drift, *below]]
+    state = _alertmanager_states(tmp_path, out / "alertmanager.yml", alerts,
+                                 lambda s: s[below[0]]["inhibitedBy"])
+    assert state[below[0]]["state"] == "suppressed"
+    assert state[below[1]]["state"] == "active" and not state[below[1]]["inhibitedBy"]
+    assert state[below[2]]["state"] == "active" and not state[below[2]]["inhibitedBy"]
+    # the model-age ticket on variety_tagger (a software alert) explains nothing: it holds back no page below
+    age = "variety_tagger.software.model_age"
+    rules = [r for p in (out / "rules").glob("*.yml") for g in yaml.safe_load(p.read_text())["groups"]
+             for r in g["rules"] if r.get("alert") == alert_name(age)]
+    level = rules[0]["labels"]["level"]
+    alerts = [_exported(out, plan, age, level), *(_exported(out, plan, c) for c in below)]
+    state = _alertmanager_states(tmp_path / "second", out / "alertmanager.yml", alerts,
+                                 lambda s: any(v["inhibitedBy"] for v in s.values()))  # waits the full 30 s
+    assert all(state[c]["state"] == "active" and not state[c]["inhibitedBy"] for c in below), state
+    # the upstream alert names what it may explain
+    mix = next(r for p in (out / "rules").glob("*.yml") for g in yaml.safe_load(p.read_text())["groups"]
+               for r in g["rules"] if r.get("alert") == alert_name(upstream_drift) and r["labels"]["level"] == "critical")
+    assert "grade_assigner.input.from_variety_tagger_mix" in mix["annotations"]["likely_explains"]
 
 
 # --- a real Prometheus server scraping the example exporter -------------------------------------------------

@@ -125,11 +125,27 @@ class Case:
     alert_tests: list[dict[str, Any]]
 
 
+def is_drift(metric: dict[str, Any]) -> bool:
+    """A drift check: an input or output distribution, mix or share that moves when the data moves. Only these
+    explain drift below them and only these may be held back by an upstream one: never a fault check (contract,
+    schema, missing or out-of-range values), a label-based quality check (harm itself) or a software check."""
+    catches = set(metric.get("catches", []))
+    return (metric["layer"] in ("input", "output") and not metric.get("on_labels") and "fault" not in catches
+            and bool(catches & {"data-drift", "concept-drift", "upstream-change"}))
+
+
+def explains_drift(metric: dict[str, Any]) -> bool:
+    """An input or output check that moves when the data or an upstream stage changes (a gate's pass rate, a
+    category mix, an unknown share): while critical, it is the likely cause of drift below it."""
+    catches = set(metric.get("catches", []))
+    return (metric["layer"] in ("input", "output") and not metric.get("on_labels")
+            and bool(catches & {"data-drift", "upstream-change"}))
+
+
 def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str) -> dict[str, str]:
-    drift = metric["layer"] in ("input", "output") and bool(
-        set(metric.get("catches", [])) & {"data-drift", "concept-drift", "upstream-change"})
     labels: dict[str, str] = {"severity": severity, "level": level, "layer": metric["layer"],
-                              "drift": "true" if drift else "false"}
+                              "drift": "true" if is_drift(metric) else "false",
+                              "explains": "true" if explains_drift(metric) else "false"}
     if owner:
         labels["owner"] = owner
     return labels
@@ -164,7 +180,11 @@ def _step(window: str) -> int:
     return max(60, int(durations.parse(window) / 10) // 60 * 60)
 
 
-def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group: GroupExport) -> None:
+EXPLAINS_SHOWN = 8  # downstream checks named in an upstream drift alert's annotation
+
+
+def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group: GroupExport,
+                   explains: list[str] | None = None) -> None:
     value = f'stagewatch:check_value{{pipeline="{sig.pipeline}", stage="{sig.stage}", check="{sig.check}"}}'
     name = alert_name(metric["id"])
     levels = []
@@ -179,6 +199,12 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
             rule["for"] = sig.for_
         labels = _labels(metric, owner, level, severity)
         annotations = _annotations(metric, level, threshold)
+        if explains and level == "critical":
+            shown = ", ".join(explains[:EXPLAINS_SHOWN])
+            more = len(explains) - EXPLAINS_SHOWN
+            annotations["likely_explains"] = _inert(
+                "drift checks below this stage that this alert holds back while it fires (they stay visible as "
+                f"inhibited): {shown}" + (f" and {more} more" if more > 0 else ""))
         rule["labels"] = _templated(labels)
         rule["annotations"] = _templated(annotations)
         group.target(sig).append(rule)
@@ -356,6 +382,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
     blocks = [(s["id"], s, s.get("metrics", [])) for s in plan["stages"]]
     blocks.append((PIPELINE_STAGE, {"id": PIPELINE_STAGE}, plan.get("pipeline_metrics", [])))
     families: dict[str, dict[str, Any]] = {}
+    below_drift = _drift_below(plan, live)
     for stage_id, info, metrics in blocks:
         owner = info.get("owner") or plan.get("owner")
         if owner:
@@ -375,7 +402,8 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
                 sig = signal_for(metric, pipeline, stage_id, info)
                 assert sig is not None
                 group.target(sig).extend(sig.recording())
-                _signal_alerts(sig, metric, owner, group)
+                _signal_alerts(sig, metric, owner, group,
+                               below_drift.get(stage_id) if explains_drift(metric) else None)
                 fams = sig.families()
             for fam in fams:
                 entry = families.setdefault(fam.name, {"name": fam.name, "type": fam.type, "labels": list(fam.labels),
@@ -404,6 +432,18 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
     return PrometheusExport(groups, alertmanager_config(plan, sorted(owners)), instrumentation)
 
 
+def _drift_below(plan: dict[str, Any], live: set[str]) -> dict[str, list[str]]:
+    """Per stage, the live drift checks of every stage below it (what its drift alerts may explain)."""
+    graph = nx.DiGraph()
+    graph.add_nodes_from(s["id"] for s in plan["stages"])
+    graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []))
+    drift = {s["id"]: [m["id"] for m in s.get("metrics", []) if m["id"] in live and is_drift(m)]
+             for s in plan["stages"]}
+    order = {s["id"]: i for i, s in enumerate(plan["stages"])}
+    return {s: [c for d in sorted(nx.descendants(graph, s), key=order.__getitem__) for c in drift[d]]
+            for s in graph}
+
+
 def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, Any]:
     pipeline = plan["pipeline"]
     graph = nx.DiGraph()
@@ -419,9 +459,12 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, An
         below = sorted(nx.descendants(graph, stage["id"]), key=lambda n: order[n])
         if not below:
             continue
+        # Only a critical input or output alert upstream that moves with the data explains drift below; a software
+        # alert (a model's age) holds back nothing, and contract, quality and software alerts below are never
+        # held back (their `drift` label is false).
         inhibit.append({
             "source_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
-                                'level="critical"'],
+                                'level="critical"', 'explains="true"'],
             "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
                                 'drift="true"'],
             "equal": ["pipeline"],
