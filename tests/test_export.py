@@ -443,3 +443,61 @@ def _write_test(tmp_path: Path, test: dict, at: int, alerts: list[dict], labels:
     doc["tests"][0]["alert_rule_test"] = [{"eval_time": f"{at}s", "alertname": alerts[0]["alert"],
                                            "exp_alerts": expected}]
     return _write_yaml(tmp_path / "firing.yml", doc)
+
+
+BATCH = """
+pipeline: bike-share
+context: business
+stages:
+  - id: dock_snapshot
+    kind: source
+    modality: tabular
+    output: records
+    serving: batch
+    run_every: 1d
+    volume_per_hour: 20
+    inputs:
+      - {name: docked_bikes, type: numeric, range: [0, 80]}
+"""
+
+
+@pytest.mark.parametrize("case,runs,fires", [
+    ("on time, usual volume", [480, 480, 480, 480], False),
+    ("a run missing", [480, 480, 480, 0], True),
+    ("a half-size run", [480, 480, 480, 240], True),
+])
+def test_a_daily_batch_is_judged_per_run(tmp_path, write, case, runs, fires):
+    """A daily batch lands its rows at 02:00; the record count is checked over whole days against the reference
+    rate, evaluated once a day (here at 14:00, any fixed time of day): quiet for a usual run, firing for a missing
+    or half-size one (promtool)."""
+    plan = compose(load_pipeline(str(write("pipeline.yaml", BATCH))))
+    metric = next(m for m in plan["stages"][0]["metrics"] if m["id"] == "dock_snapshot.output.record_count")
+    assert metric["window"] == "1d" and plan["stages"][0]["change_rate"] == "days"
+    export_prometheus(plan, str(tmp_path / "out"))
+    rule_file = tmp_path / "out" / "rules" / "dock_snapshot.rules.yml"
+    alerts = [r for g in yaml.safe_load(rule_file.read_text())["groups"] for r in g["rules"]
+              if r.get("alert") == alert_name(metric["id"])]
+    step = 600
+    per_day = 86400 // step
+    labels = f'pipeline="bike-share", stage="dock_snapshot", check="{metric["id"]}"'
+    total, values = 0.0, []
+    for day, rows in enumerate(runs):
+        for i in range(per_day):
+            if i == 2 * 3600 // step:  # the run lands at 02:00
+                total += rows
+            values.append(total)
+    series = [{"series": f"stagewatch_check_items_total{{{labels}}}", "values": " ".join(f"{v:g}" for v in values)},
+              {"series": f"stagewatch_reference_items_per_second{{{labels}}}",
+               "values": " ".join([f"{480 / 86400:.10g}"] * len(values))}]
+    at = 3 * 86400 + 14 * 3600  # the fourth day, 14:00
+    expected = []
+    if fires:
+        series_labels = dict(kv.split("=", 1) for kv in labels.replace('"', "").split(", "))
+        expected = [{"exp_labels": {**a["labels"], "alertname": a["alert"], **series_labels},
+                     "exp_annotations": a["annotations"]} for a in alerts]
+    test = {"rule_files": [str(rule_file)], "evaluation_interval": f"{step}s",
+            "tests": [{"interval": f"{step}s", "input_series": series, "alert_rule_test": [
+                {"eval_time": f"{2 * 86400 + 14 * 3600}s", "alertname": alerts[0]["alert"], "exp_alerts": []},
+                {"eval_time": f"{at}s", "alertname": alerts[0]["alert"], "exp_alerts": expected}]}]}
+    proc = _run(_tool("promtool"), "test", "rules", str(_write_yaml(tmp_path / "batch.yml", test)))
+    assert proc.returncode == 0, case + "\n" + proc.stdout[-3000:] + proc.stderr[-2000:]

@@ -72,9 +72,10 @@ class _Context:
             return sizing.Traffic(sum(s.volume_per_hour for s in sources), fastest)
         stage = stages[edge[0]] if edge else stages[owner]
         if quality:
-            return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay)
+            return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay,
+                                  run_every=stage.run_every)
         return sizing.Traffic(stage.volume_per_hour, stage.change_rate, None, stage.slo_target, stage.slo_period,
-                              stage.latency_slo_ms)
+                              stage.latency_slo_ms, stage.run_every)
 
 
 def _is_quality(metric: dict[str, Any]) -> bool:

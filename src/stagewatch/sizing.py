@@ -39,6 +39,7 @@ class Traffic:
     slo_target: float | None = None
     slo_period: str | None = None
     latency_slo_ms: float | None = None
+    run_every: str | None = None  # a batch stage's period: windows are whole runs
 
 
 @dataclass
@@ -201,7 +202,22 @@ def size_metric(metric: dict[str, Any], traffic: Traffic, budget: Budget) -> dic
 
 
 def _target(traffic: Traffic) -> tuple[int, int]:
-    return CHANGE_RATE_WINDOWS[traffic.change_rate]
+    target, longest = CHANGE_RATE_WINDOWS[traffic.change_rate]
+    if traffic.run_every:  # a batch stage is judged on whole runs: never a window shorter than its period
+        period = durations.parse(traffic.run_every)
+        target, longest = max(target, period), max(longest, period)
+    return target, longest
+
+
+def _windows(traffic: Traffic, target: int) -> list[int]:
+    """Candidate windows from ``target`` up: the ladder, or for a batch stage whole multiples of its period (a
+    window of a day and a half would hold one run or two depending on the time of day)."""
+    if not traffic.run_every:
+        return [w for w in LADDER if w >= target]
+    period = durations.parse(traffic.run_every)
+    multiples = {period * k for k in (1, 2, 3, 4, 7, 14, 30) if period * k <= max(LONGEST, period)}
+    multiples |= {w for w in LADDER if w >= period and w % period == 0}
+    return sorted(w for w in multiples if w >= target)
 
 
 def _size_level(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
@@ -268,7 +284,7 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     if fixed:
         chosen = _with_floor(stat, _trial(stat, metric, traffic, budget, durations.parse(metric["window"])))
     else:
-        trials = [_trial(stat, metric, traffic, budget, w) for w in LADDER if w >= target]
+        trials = [_trial(stat, metric, traffic, budget, w) for w in _windows(traffic, target)]
         sound = [t for t in trials if t.sound]
         chosen = _with_floor(stat, sound[0] if sound else trials[-1])
         if sound and chosen.window > longest:

@@ -21,6 +21,17 @@ DEFAULT_LABEL_DELAY = "1d"
 DEFAULT_SLO_TARGET = 0.999
 DEFAULT_SLO_PERIOD = "30d"
 
+def batch_change_rate(run_every: str | None) -> str | None:
+    """The default change rate of a batch stage follows its period: data can only move once a run."""
+    if not run_every or not durations.is_duration(run_every):
+        return None
+    seconds = durations.parse(run_every)
+    for rate, longest in (("minutes", 15 * 60), ("hours", 6 * 3600), ("days", 7 * 86400)):
+        if seconds <= longest:
+            return rate
+    return "months"
+
+
 FIELD_KEYS = ("name", "type", "unknown_value", "range", "categories", "description")
 
 
@@ -177,7 +188,8 @@ def from_document(doc: yamlio.Document) -> Pipeline:
                 output=raw["output"],
                 serving=raw["serving"],
                 volume_per_hour=raw["volume_per_hour"],
-                change_rate=raw.get("change_rate", DEFAULT_CHANGE_RATE[context]),
+                change_rate=raw.get("change_rate", batch_change_rate(raw.get("run_every"))
+                                    or DEFAULT_CHANGE_RATE[context]),
                 labels=labels,
                 label_delay=raw.get("label_delay"),
                 labelled_share=raw.get("labelled_share"),
