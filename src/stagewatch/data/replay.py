@@ -109,6 +109,12 @@ def _figure(shown: Any) -> float | None:
     return None if shown is None else number(shown)
 
 
+def _share(sizing: dict[str, Any], key: str) -> float | None:
+    """The false alarms per week the plan's budget gave a check at one level: alpha x evaluations per week."""
+    alpha, evaluations = _figure(sizing.get(key)), sizing.get("evaluations_per_week")
+    return None if alpha is None or not evaluations else alpha * float(evaluations)
+
+
 def _step(cadence: str, runnable: list[Runnable]) -> float:
     if cadence == "1m":
         return 60.0
@@ -195,8 +201,8 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
         values, n, m = r.measure.values(r.ref, counts, expected)
         levels, insufficient = _levels(r, values, n)
         sizing = r.metric.get("sizing") or {}
-        planned_crit = _figure(sizing.get("expected_false_alarms_per_week"))
-        planned_warn = _figure(sizing.get("expected_false_warnings_per_week"))
+        planned_crit = _share(sizing, "alpha")
+        planned_warn = _share(sizing, "warn_alpha")
         windows = (end - start) / seconds
         crit_n, warn_n = int(np.sum(levels == 2)), int(np.sum(levels == 1))
         episodes = _episodes(times, levels > 0, seconds)

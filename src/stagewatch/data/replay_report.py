@@ -107,7 +107,7 @@ def _row_cells(c: Any, result: ReplayResult) -> list[str]:
             timeline(c.times, c.levels, result.start, result.end)]
 
 
-HEADERS = ["check", "window", "evaluations", "warn", "critical", "episodes", "critical/week", "planned/week",
+HEADERS = ["check", "window", "evaluations", "warn", "critical", "episodes", "critical/week", "budget share/week",
            "verdict", "timeline (a day per mark)"]
 
 
