@@ -6,11 +6,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from stagewatch import stats
+from stagewatch import cusum
 
 
 def _simulate_run_lengths(p: float, p0: float, p1: float, h: float, runs: int, seed: int) -> np.ndarray:
-    a, b = stats.bernoulli_cusum_increments(p0, p1)
+    a, b = cusum.bernoulli_cusum_increments(p0, p1)
     rng = np.random.default_rng(seed)
     out = np.empty(runs)
     for r in range(runs):
@@ -33,7 +33,7 @@ def _simulate_run_lengths(p: float, p0: float, p1: float, h: float, runs: int, s
 def test_markov_chain_run_length_matches_simulation(p, label):
     # Brook & Evans (1972) Markov chain on the discretised CUSUM; Reynolds & Stoumbos (1999) for the increments.
     p0, p1, h = 0.1, 0.2, 2.5
-    computed = stats.bernoulli_cusum_arl(p, p0, p1, h, resolution=40)
+    computed = cusum.bernoulli_cusum_arl(p, p0, p1, h, resolution=40)
     lengths = _simulate_run_lengths(p, p0, p1, h, runs=400, seed=7)
     standard_error = lengths.std(ddof=1) / np.sqrt(lengths.size)
     # within 3 standard errors of the simulated mean, plus 3% for the discretisation of S
@@ -41,22 +41,22 @@ def test_markov_chain_run_length_matches_simulation(p, label):
 
 
 def test_the_limit_gives_the_chosen_in_control_run_length():
-    h = stats.bernoulli_cusum_limit(0.05, 0.1, 2000.0)
-    assert stats.bernoulli_cusum_arl(0.05, 0.05, 0.1, h) == pytest.approx(2000.0, rel=0.01)
-    assert stats.bernoulli_cusum_arl(0.1, 0.05, 0.1, h) < 2000.0 / 5  # a doubled share is caught far sooner
+    h = cusum.bernoulli_cusum_limit(0.05, 0.1, 2000.0)
+    assert cusum.bernoulli_cusum_arl(0.05, 0.05, 0.1, h) == pytest.approx(2000.0, rel=0.01)
+    assert cusum.bernoulli_cusum_arl(0.1, 0.05, 0.1, h) < 2000.0 / 5  # a doubled share is caught far sooner
 
 
 def test_grouped_cusum_never_exceeds_the_item_by_item_cusum():
     rng = np.random.default_rng(3)
     items = rng.random(5000) < 0.12
     p0, p1 = 0.1, 0.2
-    a, b = stats.bernoulli_cusum_increments(p0, p1)
+    a, b = cusum.bernoulli_cusum_increments(p0, p1)
     s, item_path = 0.0, []
     for x in items:
         s = max(0.0, s + (a if x else b))
         item_path.append(s)
     groups = items.reshape(100, 50)
-    grouped, _ = stats.binomial_cusum(groups.sum(axis=1), np.full(100, 50), p0, p1)
+    grouped, _ = cusum.binomial_cusum(groups.sum(axis=1), np.full(100, 50), p0, p1)
     assert np.all(grouped <= np.array(item_path)[49::50] + 1e-9)
 
 

@@ -21,7 +21,8 @@ import numpy as np
 import pytest
 from scipy import stats as st
 
-from stagewatch import durations, sizing, stats
+from stagewatch import durations, sizing
+from stagewatch import binned
 
 WINDOWS = 24_000  # about 143 weeks of 1h windows
 WINDOWS_PER_REFERENCE = 40
@@ -86,7 +87,7 @@ def window_values(statistic: str, metric: dict, n: float, m: float | None, windo
             ref_counts = rng.multinomial(int(m), p0)
             counts = rng.multinomial(items[r], p0)
             if statistic == "psi":
-                e = stats.smoothed_shares(ref_counts)
+                e = binned.smoothed_shares(ref_counts)
                 a = (counts + 0.5) / (counts + 0.5).sum(axis=1, keepdims=True)
                 out.append(np.sum((a - e) * np.log(a / e), axis=1))
             else:

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import yaml
 
-from stagewatch import stats
+from stagewatch import binned
 from stagewatch.exporters.signals import BinSignal, counter
 
 STEP_S = 60
@@ -52,7 +52,7 @@ def _bin_series(sig: BinSignal, reference_counts: np.ndarray, per_step: list[lis
                 steps: int) -> dict[str, list[float | None]]:
     """Counters per bin (None: the bin's series is never created) and the smoothed reference shares."""
     labels = sig.check_labels
-    ref = stats.smoothed_shares(reference_counts)
+    ref = binned.smoothed_shares(reference_counts)
     series: dict[str, list[float | None]] = {}
     for i, increments in enumerate(per_step):
         key = f'{{{labels}, bin="{i}"}}'
@@ -77,8 +77,8 @@ def test_promql_psi_equals_the_plan_psi_on_the_same_counters(tmp_path):
     increments = [[float(x)] for x in rng.multinomial(80, [0.25, 0.2, 0.2, 0.15, 0.1, 0.1])]
     window = np.array([x[0] for x in increments]) * WINDOW_STEPS
     sig = _psi_signal(bins, critical=0.25)
-    # The plan's PSI: stats.psi with +0.5 smoothing on the reference counts and the window counts.
-    expected = stats.psi(reference, window, smoothing=0.5)
+    # The plan's PSI: binned.psi with +0.5 smoothing on the reference counts and the window counts.
+    expected = binned.psi(reference, window, smoothing=0.5)
     steps = WINDOW_STEPS + 3
     result = _run_rules(tmp_path, sig, _only_value(sig, expected),
                         _bin_series(sig, reference, increments, steps), steps - 1,
@@ -92,7 +92,7 @@ def test_promql_psi_can_tell_a_wrong_value(tmp_path):
     reference = np.array([1000, 1000, 1000, 1000])
     increments = [[40.0], [30.0], [20.0], [10.0]]
     sig = _psi_signal(bins, critical=0.25)
-    wrong = stats.psi(reference, np.array([400, 300, 200, 100])) + 1e-6
+    wrong = binned.psi(reference, np.array([400, 300, 200, 100])) + 1e-6
     steps = WINDOW_STEPS + 3
     result = _run_rules(tmp_path, sig, _only_value(sig, wrong), _bin_series(sig, reference, increments, steps),
                         steps - 1, [("ValueMatches", True)])
@@ -106,7 +106,7 @@ def test_a_bin_whose_series_was_never_created_reads_as_empty_and_fires(tmp_path)
     reference = np.array([2000, 2000, 2000, 2000, 2000])
     increments: list[list[float] | None] = [None, [25.0], [25.0], [25.0], [25.0]]
     window = np.array([0, 250, 250, 250, 250])
-    expected = stats.psi(reference, window, smoothing=0.5)
+    expected = binned.psi(reference, window, smoothing=0.5)
     assert expected > 1.0  # about 1.6: a fifth of the mass at share 0.5/1002.5
     sig = _psi_signal(bins, critical=0.25)
     steps = WINDOW_STEPS + 3
@@ -134,8 +134,8 @@ def test_python_mirror_of_the_promql_matches_the_plan_statistics(statistic):
     reference = np.array([500, 300, 150, 50])
     window = np.array([90, 60, 30, 20])
     if statistic == "psi":
-        assert statistic_of("psi", list(window), list(stats.smoothed_shares(reference))) == pytest.approx(
-            stats.psi(reference, window))
+        assert statistic_of("psi", list(window), list(binned.smoothed_shares(reference))) == pytest.approx(
+            binned.psi(reference, window))
     else:
         # Against a reference known exactly (one-sample chi-square), w = sqrt(sum (a - e)^2 / e).
         e = reference / reference.sum()

@@ -8,6 +8,7 @@ import pytest
 
 from conftest import all_pipelines
 from stagewatch import durations, sizing, stats
+from stagewatch import binned
 from stagewatch.plan import all_metrics, compose
 from stagewatch.spec import load_pipeline
 
@@ -172,11 +173,11 @@ def _observed(statistic, metric, n, m, shift, rng, trials):
             psi_of = lambda s: float(np.sum((p0 * (1 + s * direction) - p0) * np.log(1 + s * direction)))  # noqa
             scale = optimize.brentq(lambda s: psi_of(s) - shift, 0, 0.99) if shift > 0 else 0.0
             p1 = p0 * (1 + scale * direction)
-            return [stats.psi(rng.multinomial(m, p0), rng.multinomial(n, p1), smoothing=0) for _ in range(trials)]
+            return [binned.psi(rng.multinomial(m, p0), rng.multinomial(n, p1), smoothing=0) for _ in range(trials)]
         u = np.zeros(k)
         u[0], u[1] = 1 / math.sqrt(2), -1 / math.sqrt(2)
         p1 = p0 + shift * np.sqrt(p0) * u
-        return [stats.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p1)) for _ in range(trials)]
+        return [binned.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p1)) for _ in range(trials)]
     if statistic == "ks":
         s = 2 * st.norm.ppf((1 + shift) / 2)
         return [st.ks_2samp(rng.normal(0, 1, m), rng.normal(s, 1, n)).statistic for _ in range(trials)]

@@ -10,6 +10,8 @@ from scipy import special
 from scipy import stats as st
 
 from stagewatch import stats
+from stagewatch import binned
+from stagewatch import burn_rates
 
 RNG_SEED = 20261201
 
@@ -70,7 +72,7 @@ def test_psi_of_counts_is_the_symmetric_kl_divergence():
     cur = np.array([90, 310, 350, 250])
     e, a = ref / ref.sum(), cur / cur.sum()
     expected = float(np.sum(special.rel_entr(a, e)) + np.sum(special.rel_entr(e, a)))
-    assert stats.psi(ref, cur, smoothing=0) == pytest.approx(expected, rel=1e-12)
+    assert binned.psi(ref, cur, smoothing=0) == pytest.approx(expected, rel=1e-12)
 
 
 def test_two_proportion_sample_size_worked_example():
@@ -98,8 +100,8 @@ def test_detectable_proportion_change_is_near_the_sample_size_formula():
 ])
 def test_burn_rates_match_the_sre_workbook(long_h, share, published_rate, short_min):
     period = 30 * 86400
-    assert stats.burn_rate(share, long_h * 3600, period) == pytest.approx(published_rate)
-    alerts = {a["long_window_s"]: a for a in stats.burn_rate_alerts(period)}
+    assert burn_rates.burn_rate(share, long_h * 3600, period) == pytest.approx(published_rate)
+    alerts = {a["long_window_s"]: a for a in burn_rates.burn_rate_alerts(period)}
     alert = alerts[long_h * 3600]
     assert alert["burn_rate"] == pytest.approx(published_rate)
     assert alert["short_window_s"] == short_min * 60
@@ -184,7 +186,7 @@ def test_category_mix_false_alarms_and_power_by_simulation():
     def rate(p):
         hits = 0
         for _ in range(TRIALS):
-            hits += stats.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p)) > floor
+            hits += binned.effect_size_w(rng.multinomial(m, p0), rng.multinomial(n, p)) > floor
         return hits / TRIALS
 
     assert _within_alpha(rate(p0))
@@ -251,7 +253,7 @@ def test_false_alarm_is_alpha_at_the_floor_for_every_statistic():
 
 def _pairs(period_days):
     return [(a["severity"], a["long_window_s"] / 60, a["short_window_s"] / 60, a["burn_rate"])
-            for a in stats.burn_rate_alerts(period_days * 86400)]
+            for a in burn_rates.burn_rate_alerts(period_days * 86400)]
 
 
 def test_burn_rate_pairs_30_days_are_the_workbook_table():
@@ -276,18 +278,18 @@ def test_burn_rate_pairs_scale_with_the_period(days, table):
 def test_every_pair_spends_its_budget_share_and_pages_only_above_burn_rate_1(days):
     period = days * 86400
     shares = [0.02, 0.05, 0.10]
-    for alert, share in zip(stats.burn_rate_alerts(period), shares):
+    for alert, share in zip(burn_rates.burn_rate_alerts(period), shares):
         # Budget consumed = burn rate x long window / period (SRE Workbook, ch. 5).
         assert alert["burn_rate"] * alert["long_window_s"] / period == pytest.approx(share)
         assert alert["short_window_s"] <= alert["long_window_s"]
         if alert["severity"] == "page":
             assert alert["burn_rate"] > 1
-    assert not stats.pages_within_budget(stats.burn_rate_alerts(period))
+    assert not burn_rates.pages_within_budget(burn_rates.burn_rate_alerts(period))
 
 
 def test_a_period_too_short_to_page_is_named():
     # A 3-hour period: 2% of the budget in the 5m shortest window is burn rate 0.02 x 180 / 5 = 0.72.
-    within = stats.pages_within_budget(stats.burn_rate_alerts(3 * 3600))
+    within = burn_rates.pages_within_budget(burn_rates.burn_rate_alerts(3 * 3600))
     assert [a["burn_rate"] for a in within] == [pytest.approx(0.72)]
 
 

@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from stagewatch import durations, stats
+from stagewatch import burn_rates
 from stagewatch.durations import HOUR, WEEK
 
 # Detection target and the longest acceptable window per change rate, in seconds (a design decision, documented
@@ -233,7 +234,7 @@ def _size_level(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
 def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
     target = traffic.slo_target or 0.999
     period_s = durations.parse(traffic.slo_period or "30d")
-    alerts = stats.burn_rate_alerts(period_s)
+    alerts = burn_rates.burn_rate_alerts(period_s)
     fast = alerts[0]
     slow = alerts[-1]
     requests = traffic.per_hour * fast["short_window_s"] / HOUR
@@ -253,9 +254,9 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
         f"{durations.format(slow['long_window_s'])} ({slow['budget_share']:.0%}). Both windows of a pair must exceed "
         f"the rate, so the alert stops soon after the burn does. The windows are the SRE Workbook's 30-day windows "
         f"scaled to the {durations.format(period_s)} period (whole minutes, at least "
-        f"{durations.format(stats.SHORTEST_SLO_WINDOW_S)}), so each pair spends the same share of the budget.")
+        f"{durations.format(burn_rates.SHORTEST_SLO_WINDOW_S)}), so each pair spends the same share of the budget.")
     review = None
-    within = stats.pages_within_budget(alerts)
+    within = burn_rates.pages_within_budget(alerts)
     if within:
         review = (f"the {durations.format(period_s)} SLO period is too short for paging: a page over "
                   f"{durations.format(within[0]['long_window_s'])} would fire at burn rate "

@@ -222,7 +222,7 @@ def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_
     """The CUSUM of a share from the start of the log to ``at``, grouped by hour."""
     import numpy as np
 
-    from stagewatch import stats
+    from stagewatch.cusum import binomial_cusum
 
     keys = r.aggregates()
     start = (first_ts if first_ts is not None else at) - 1.0
@@ -231,7 +231,7 @@ def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_
     order = sorted((b for b in buckets if 0 <= b < count), reverse=True)
     matches = np.array([buckets[b][f"{r.metric['id']}#matches"] for b in order])
     n = np.array([buckets[b][f"{r.metric['id']}#n"] for b in order])
-    path, _ = stats.binomial_cusum(matches, n, cusum.p0, cusum.p1)
+    path, _ = binomial_cusum(matches, n, cusum.p0, cusum.p1)
     value = float(path[-1]) if path.size else 0.0
     v = "insufficient" if not n.sum() else ("critical" if value >= cusum.h else "ok")
     row = _row(r.metric, source.stage, "sequential", v, value=value, n=int(n.sum()), m=r.ref.get("n"),

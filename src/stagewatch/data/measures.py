@@ -16,11 +16,11 @@ from typing import Any
 import numpy as np
 from sqlglot import exp
 
-from stagewatch import stats
+from stagewatch import binned
 from stagewatch.data import aggregates as ag
 from stagewatch.data.aggregates import Expr
 
-KS_BINS = 100  # reference-quantile bins for a binned KS: binning error at most ~0.01 (stats.ks_binning_error)
+KS_BINS = 100  # reference-quantile bins for a binned KS: binning error at most ~0.01 (binned.ks_binning_error)
 MAX_CATEGORIES_SEEN = 1000  # categories remembered per column for the "unseen" check
 DISTRIBUTIONS = ("psi", "ks", "chi_square", "mean")
 
@@ -196,7 +196,7 @@ class Measure:
             win = self._matrix(counts, "cat" if s == "chi_square" else "bin")
             rc = np.asarray(ref["counts"], dtype=float)
             n = win.sum(axis=1)
-            fn = {"psi": stats.psi_many, "ks": stats.ks_many, "chi_square": stats.effect_size_w_many}[s]
+            fn = {"psi": binned.psi_many, "ks": binned.ks_many, "chi_square": binned.effect_size_w_many}[s]
             with np.errstate(divide="ignore", invalid="ignore"):
                 value = np.where(n > 0, fn(rc, win), np.nan)
             return value, n, int(rc.sum())

@@ -229,11 +229,11 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
 def _replay_cusum(r: Runnable, stage: str, cusum: Any, matrix: np.ndarray, column: dict[str, int],
                   ends: np.ndarray, start: float, end: float) -> CheckReplay:
     """The sequential rule of a share, item counts grouped by the replay's buckets, restarted after each alarm."""
-    from stagewatch import stats
+    from stagewatch.cusum import binomial_cusum
 
     matches = matrix[:, column[f"{r.metric['id']}#matches"]]
     n = matrix[:, column[f"{r.metric['id']}#n"]]
-    path, alarm = stats.binomial_cusum(matches, n, cusum.p0, cusum.p1, cusum.h)
+    path, alarm = binomial_cusum(matches, n, cusum.p0, cusum.p1, cusum.h)
     keep = ends > start
     times, levels = ends[keep], np.where(alarm[keep], 2, 0)
     weeks = (end - start) / WEEK

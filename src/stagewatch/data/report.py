@@ -185,7 +185,7 @@ def reference_openmetrics(baseline: dict[str, Any], plan: dict[str, Any]) -> str
     """The reference gauges the Prometheus export reads, from a baseline."""
     from prometheus_client.core import GaugeMetricFamily
 
-    from stagewatch import stats
+    from stagewatch import binned
     from stagewatch.data import contract
 
     pipeline = plan.get("pipeline", "")
@@ -203,8 +203,8 @@ def reference_openmetrics(baseline: dict[str, Any], plan: dict[str, Any]) -> str
             if ref is None:
                 continue
             labels = {"pipeline": pipeline, "stage": stage, "check": metric["id"]}
-            if metric["statistic"] == "psi":  # the PromQL PSI smooths like stats.psi: publish smoothed shares
-                for i, share in enumerate(stats.smoothed_shares(ref["counts"])):
+            if metric["statistic"] == "psi":  # the PromQL PSI smooths like binned.psi: publish smoothed shares
+                for i, share in enumerate(binned.smoothed_shares(ref["counts"])):
                     samples.append(({**labels, "bin": str(i)}, float(share)))
             elif metric["statistic"] == "chi_square":
                 total = sum(ref["counts"]) or 1

@@ -11,7 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
-from stagewatch import stats
+from stagewatch import cusum
 
 DEFAULT_SHIFT = 2.0
 HOURS_PER_WEEK = 168.0
@@ -47,4 +47,4 @@ def setup(metric: dict[str, Any], ref: dict[str, Any], stage_ref: dict[str, Any]
     p1 = min(p0 * float(option.get("shift", DEFAULT_SHIFT)), 0.99)
     items_per_week = ref["n"] / hours * HOURS_PER_WEEK
     arl0 = items_per_week / (float(alpha) * float(evaluations))
-    return Cusum(p0, p1, stats.bernoulli_cusum_limit(p0, p1, arl0), arl0, items_per_week)
+    return Cusum(p0, p1, cusum.bernoulli_cusum_limit(p0, p1, arl0), arl0, items_per_week)

@@ -509,7 +509,7 @@ def instrumentation_markdown(instr: dict[str, Any]) -> str:
              "`increase()`; the rules read a bin whose series was never created as an empty bin, but only while "
              "its reference share is published.", "",
              "**PSI reference shares are smoothed**: publish (count + 0.5) / (total + 0.5 x bins) per bin, the "
-             "shares `stagewatch.stats.smoothed_shares` gives; the rules add the same 0.5 to every window count, so "
+             "shares `stagewatch.binned.smoothed_shares` gives; the rules add the same 0.5 to every window count, so "
              "the exported PSI equals the plan's PSI on the same counts.", "",
              "| Metric | Type | Labels | What it is |", "|---|---|---|---|"]
     for fam in instr["families"]:

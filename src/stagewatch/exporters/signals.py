@@ -16,10 +16,11 @@ import math
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Sequence
 
-from stagewatch import durations, stats
+from stagewatch import durations
+from stagewatch import binned
 
 SMOOTH = 1e-4  # floor for reference shares of a category mix, so that the division by them stays finite
-PSI_SMOOTHING = stats.PSI_SMOOTHING  # added to every bin count before PSI takes shares, as stats.psi does
+PSI_SMOOTHING = binned.PSI_SMOOTHING  # added to every bin count before PSI takes shares, as binned.psi does
 # A guard only: smoothed reference shares are never 0, but a reference published unsmoothed would make ln() infinite.
 # Far below any smoothed share of a realistic reference (0.5 / (items + 0.5 bins) reaches 1e-9 at 5e8 items).
 PSI_REFERENCE_FLOOR = 1e-9
@@ -199,7 +200,7 @@ class CountSignal(Signal):
 class BinSignal(Signal):
     """PSI or category-mix effect size w from per-bin counters and reference shares, in PromQL.
 
-    PSI is the plan's PSI (:func:`stagewatch.stats.psi`): every window count gets ``PSI_SMOOTHING`` (+0.5) before
+    PSI is the plan's PSI (:func:`stagewatch.binned.psi`): every window count gets ``PSI_SMOOTHING`` (+0.5) before
     the shares are taken, and the reference gauge holds the reference's shares smoothed the same way, so an empty
     bin is a finite share and a bin that empties completely still counts. A bin whose counter series was never
     created reads as an empty bin (``or`` with the reference-share series times 0), as long as the check has any
@@ -227,7 +228,7 @@ class BinSignal(Signal):
                   f"   and on ({by_check}) sum by ({by_check}) ({increase}))")
         c = f"stagewatch:check_bin_items{s}"
         if self.metric["statistic"] == "psi":
-            # (c_i + 0.5) / sum_j (c_j + 0.5), as stats.smoothed_shares.
+            # (c_i + 0.5) / sum_j (c_j + 0.5), as binned.smoothed_shares.
             share = (f"({c} + {PSI_SMOOTHING:g})\n  / on ({by_check}) group_left\n"
                      f"  sum by ({by_check}) ({c} + {PSI_SMOOTHING:g})")
             ref = f"clamp_min(sum by ({by_bin}) (stagewatch_reference_share{s}), {PSI_REFERENCE_FLOOR:g})"
@@ -296,7 +297,7 @@ class BinSignal(Signal):
 def statistic_of(statistic: str, counts: Sequence[float], reference: Sequence[float]) -> float:
     """The value the PromQL above computes from window ``counts`` and reference shares, with the same smoothing.
 
-    For PSI this is :func:`stagewatch.stats.psi` with ``PSI_SMOOTHING`` when ``reference`` holds the reference's
+    For PSI this is :func:`stagewatch.binned.psi` with ``PSI_SMOOTHING`` when ``reference`` holds the reference's
     smoothed shares.
     """
     if statistic == "psi":
