@@ -22,7 +22,7 @@ import pytest
 import yaml
 from conftest import SMALL, stagewatch_command
 
-from stagewatch import interview, plan as plan_mod
+from stagewatch import plan as plan_mod
 from stagewatch.cli import main
 from stagewatch.safewrite import Snapshot, safe_write
 
@@ -226,13 +226,15 @@ def test_the_interview_refuses_to_replace_a_plan_changed_while_it_ran(planned, t
     answers = tmp_path / "answers.yaml"
     answers.write_text("{}\n")  # every question takes its default: finish, merge
     edited = plan.read_text().replace("status: proposed", "status: rejected\n    note: by hand", 1)
-    real_review = interview.review
+    from stagewatch import interview_review
+
+    real_review = interview_review.review
 
     def review_then_someone_saves(*args, **kwargs):
         real_review(*args, **kwargs)
         plan.write_text(edited)
 
-    monkeypatch.setattr(interview, "review", review_then_someone_saves)
+    monkeypatch.setattr(interview_review, "review", review_then_someone_saves)
     assert main(["interview", str(plan), "--answers", str(answers)]) == 2
     assert plan.read_text() == edited
     assert "changed after stagewatch read it" in capsys.readouterr().err

@@ -163,7 +163,7 @@ def build_parser() -> argparse.ArgumentParser:
     add_data_commands(sub)
 
     try:
-        from stagewatch.interview import add_parser as add_interview
+        from stagewatch.commands_interview import add_parser as add_interview
     except ImportError:  # pragma: no cover - interview not installed
         pass
     else:

@@ -99,3 +99,11 @@ def _reach_counts(graph: nx.DiGraph, order: list[str]) -> dict[str, int]:
             mask |= bit[child] | below[child]
         below[node] = mask
     return {n: below[n].bit_count() for n in order}
+
+
+def plan_graph(plan: dict) -> nx.DiGraph:
+    """The stages of a loaded plan (or description) and their upstream edges, for commands that read a plan."""
+    graph = nx.DiGraph()
+    graph.add_nodes_from(s["id"] for s in plan["stages"])
+    graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []) or [])
+    return graph

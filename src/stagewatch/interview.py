@@ -8,20 +8,20 @@ a resumed session are the same thing: answers looked up before anything is asked
 
 from __future__ import annotations
 
-import argparse
 import sys
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
-from stagewatch import durations, spec, yamlio
-from stagewatch.errors import EXIT_INTERRUPTED, EXIT_OK, StagewatchError
+from stagewatch import spec, yamlio
+from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
 from stagewatch.lint import lint_document
 from stagewatch.plan import all_metrics, compose, dump, load_plan
 from stagewatch.safewrite import Snapshot, resolve_target
+from stagewatch.interview_answers import (FIELD_TYPES, _duration, _fields_text, _name_validator, _number,  # noqa: F401
+                                          _optional_number, _parse_fields, _positive)
 
-DRAFT_VERSION = 1
 KINDS = ["learned", "rule-based", "source"]
 MODALITIES = ["tabular", "image", "video", "audio", "text", "events", "timeseries"]
 OUTPUTS = ["class", "attribute", "score", "value", "ranking", "gate", "segments", "text", "records"]
@@ -30,7 +30,6 @@ CHANGE_RATES = ["minutes", "hours", "days", "months"]
 LABELS = ["delayed", "immediate", "none"]
 LAYERS = ("software", "input", "output")
 STRUCTURED = ("tabular", "events", "timeseries")
-FIELD_TYPES = ("numeric", "category", "text", "duration", "flag")
 
 Answers = dict[str, Any]
 
@@ -153,73 +152,6 @@ def _known_answer(question: Question, value: Any) -> Any:
         except ValueError as exc:
             raise bad(str(exc)) from None
     return value
-
-
-# --- validators -----------------------------------------------------------------------------------------------
-
-
-def _positive(value: Any) -> str | None:
-    try:
-        return None if float(value) > 0 else "must be a number above 0"
-    except (TypeError, ValueError):
-        return "must be a number, such as 1 or 0.5"
-
-
-def _number(text: Any) -> float:
-    try:
-        value = float(text)
-    except (TypeError, ValueError):
-        raise ValueError("must be a number, such as 1200 or 0.5") from None
-    return int(value) if value.is_integer() else value
-
-
-def _optional_number(text: Any) -> float | None:
-    if text is None or str(text).strip() == "":
-        return None
-    return _number(text)
-
-
-def _parse_fields(text: Any) -> list[dict[str, str]]:
-    """``"weight_g:numeric, variety:category"`` -> field dicts; ValueError with the reason otherwise."""
-    import re
-
-    if isinstance(text, list):  # from an answers file or a draft
-        return text
-    out: list[dict[str, str]] = []
-    for part in [p.strip() for p in str(text or "").split(",") if p.strip()]:
-        name, _, kind = part.partition(":")
-        name, kind = name.strip(), kind.strip()
-        if not re.match(r"^[a-z][a-z0-9_]{0,62}$", name):
-            raise ValueError(f"'{name}': field names use lower case letters, digits or _")
-        if kind not in FIELD_TYPES:
-            raise ValueError(f"'{part}': write name:type with type one of {', '.join(FIELD_TYPES)}")
-        if any(f["name"] == name for f in out):
-            raise ValueError(f"'{name}' is listed twice")
-        out.append({"name": name, "type": kind})
-    return out
-
-
-def _fields_text(fields: list[dict[str, Any]]) -> str:
-    return ", ".join(f"{f['name']}:{f['type']}" for f in fields)
-
-
-def _duration(value: Any) -> str | None:
-    return None if durations.is_duration(value) else "must be a duration such as 30m, 12h or 3d"
-
-
-def _name_validator(taken: set[str]) -> Callable[[Any], str | None]:
-    import re
-
-    def check(value: Any) -> str | None:
-        if not isinstance(value, str) or not re.match(r"^[a-z][a-z0-9_-]{0,62}$", value):
-            return "use lower case letters, digits, _ or -, starting with a letter"
-        if value == "pipeline":
-            return "'pipeline' is reserved for metrics of the whole pipeline"
-        if value in taken:
-            return f"there is already a stage called '{value}'"
-        return None
-
-    return check
 
 
 # --- the questions --------------------------------------------------------------------------------------------
@@ -349,89 +281,14 @@ def ask_stage(s: Session, index: int, total: int | None, head: dict[str, Any], e
     return stage
 
 
-def _table(metrics: list[dict[str, Any]]) -> list[str]:
-    rows = [("metric", "window", "warn", "critical", "why")]
-    for m in metrics:
-        rows.append((m["id"].split(".", 2)[2], m["window"], _th(m.get("warn")), _th(m.get("critical")),
-                     (m.get("why") or "")[:70]))
-    widths = [max(len(r[i]) for r in rows) for i in range(4)]
-    return ["    " + "  ".join(r[i].ljust(widths[i]) for i in range(4)) + "  " + r[4] for r in rows]
-
-
-def _th(value: Any) -> str:
-    return "-" if value is None else f"{value:g}"
-
-
-def review(s: Session, plan: dict[str, Any], stages: list[str]) -> None:
-    """Accept, reject (with a note) or edit the proposal, stage by stage and layer by layer, then the metrics of
-    the whole pipeline."""
-    by_id = {st["id"]: st["metrics"] for st in plan["stages"]}
-    blocks = [(stage_id, by_id[stage_id]) for stage_id in stages] + [("pipeline", plan.get("pipeline_metrics", []))]
-    for stage_id, block in blocks:
-        for layer in LAYERS:
-            metrics = [m for m in block if m["layer"] == layer and m["status"] == "proposed"]
-            if not metrics:
-                continue
-            s.out(f"{stage_id}: {len(metrics)} proposed {layer} metrics")
-            for line in _table(metrics):
-                s.out(line)
-            key = f"review.{stage_id}.{layer}"
-            choice = s.ask(Question(key, f"{stage_id}, {layer} metrics: what now?",
-                                    "Accepted metrics are exported as they are; rejected ones need a note saying "
-                                    "why; 'later' leaves them proposed for code review.", "select",
-                                    ["accept all", "choose one by one", "later"], default="accept all"))
-            if choice == "later":
-                continue
-            if choice == "accept all":
-                for m in metrics:
-                    m["status"] = "accepted"
-                continue
-            names = [m["id"] for m in metrics]
-            keep = s.ask(Question(f"{key}.accepted", "Untick the metrics to reject",
-                                  "Ticked: accepted. Unticked: rejected, and you will say why.", "checkbox", names,
-                                  default=names))
-            for m in metrics:
-                if m["id"] in keep:
-                    m["status"] = "accepted"
-                else:
-                    m["status"] = "rejected"
-                    m["note"] = s.ask(Question(f"review.{m['id']}.note", f"Why reject {m['id']}?",
-                                               "The note stays in the plan so reviewers know it was a decision.",
-                                               validate=lambda v: None if str(v or "").strip() else
-                                               "a rejection needs a reason"))
-            edit = s.ask(Question(f"{key}.edit", "Tick any metric whose window or thresholds you want to change",
-                                  "The plan will re-derive the sizing for your numbers.", "checkbox",
-                                  [n for n in names if n in keep], default=[]))
-            for m in metrics:
-                if m["id"] not in edit:
-                    continue
-                m["window"] = s.ask(Question(f"edit.{m['id']}.window", f"{m['id']}: window", "e.g. 15m, 1h, 1d",
-                                             default=m["window"], validate=_duration))
-                for level in ("warn", "critical"):
-                    m[level] = s.ask(Question(f"edit.{m['id']}.{level}", f"{m['id']}: {level} threshold "
-                                              f"({m.get('unit', '')}, blank for none)", "", default=m.get(level),
-                                              convert=_optional_number))
-                m.pop("fingerprint", None)
-
-
-def _restore_gaps(plan: dict[str, Any], findings: list[Any]) -> None:
-    """Put rejected metrics behind a coverage finding back to proposed, so the gap is open for review again."""
-    for f in findings:
-        subject = f.subject or ""
-        for stage in plan["stages"]:
-            for m in stage["metrics"]:
-                hit = (f.code == "coverage-layer" and stage["id"] == subject) or (
-                    f.code == "coverage-edge" and m.get("edge") and f"{m['edge']['from']}->{m['edge']['to']}" == subject)
-                if hit and m["status"] == "rejected" and not (m.get("note") or "").strip():
-                    m["status"] = "proposed"
-
-
 def run(session: Session, output: str, existing_plan: str | None = None, inputs: Sequence[str] = ()) -> list[str]:
     """The whole interview; returns lines telling where the files went.
 
     ``inputs`` are files the command read (answers, a draft): never written over. The plan at ``output`` is
     replaced only if nobody changed it since the interview read it.
     """
+    from stagewatch import interview_review  # it builds on the questions above
+
     plan_path = Path(output)
     sources = [str(p) for p in (*inputs, existing_plan) if p]
     resolve_target(plan_path, [p for p in sources if p != existing_plan])
@@ -492,7 +349,7 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
     description = {**head, "stages": stages}
     pipeline = _pipeline(description)
     plan = compose(pipeline, existing=existing)
-    review(session, plan, touched)
+    interview_review.review(session, plan, touched)
     plan = compose(pipeline, existing=plan)
     undecided = [m["id"] for m in all_metrics(plan) if m["status"] == "stale"
                  and m.get("previous_status", "proposed") == "proposed" and not m.get("note")]
@@ -521,7 +378,7 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
         if session.ask(Question("gaps.fix", "Reopen the rejected metrics behind these gaps for review?",
                                 "They go back to 'proposed'; you can reject them again in code review with a "
                                 "note.", "confirm", default=True)):
-            _restore_gaps(plan, findings)
+            interview_review.restore_gaps(plan, findings)
             plan = compose(pipeline, existing=plan)
     unused = session.unused()
     if unused:
@@ -573,97 +430,3 @@ def _pipeline(description: dict[str, Any]) -> spec.Pipeline:
     return pipeline
 
 
-# --- drafts and the command -----------------------------------------------------------------------------------
-
-
-def save_draft(path: Path, session: Session, output: str, existing_plan: str | None) -> None:
-    data = {"draft_version": DRAFT_VERSION, "output": output, "plan": existing_plan,
-            "answers": {**session.known, **session.answers}}
-    yamlio.write_atomic(path, "# stagewatch interview draft: resume with `stagewatch interview --resume THIS`\n"
-                        + yamlio.dump(data))
-
-
-def load_answers(path: str) -> dict[str, Any]:
-    doc = yamlio.load(path)
-    data = doc.data
-    if isinstance(data, dict) and "draft_version" in data:
-        answers = data.get("answers") or {}
-        if not isinstance(answers, dict):
-            raise StagewatchError("a draft's 'answers' is a mapping of question keys to answers", file=path,
-                                  line=doc.line_of(["answers"]), expected="answers: {pipeline.name: ...}")
-        for key in ("output", "plan"):
-            if data.get(key) is not None and not isinstance(data[key], str):
-                raise StagewatchError(f"a draft's '{key}' is a file name", file=path, line=doc.line_of([key]),
-                                      expected=f"{key}: plan.yaml")
-        data = {**data, "answers": answers}
-    elif not isinstance(data, dict):
-        raise StagewatchError("an answers file is a mapping of question keys to answers", file=path, line=1,
-                              expected="pipeline.name: my-pipeline")
-    else:
-        data = {"answers": data}
-    for key in data["answers"]:
-        if not isinstance(key, str):
-            raise StagewatchError(f"question key {key!r} is not text", file=path,
-                                  expected="keys as written in a saved draft, such as pipeline.name")
-    return data
-
-
-def _from_draft(value: str | None, key: str, draft: str) -> str | None:
-    """A path a draft file names, kept inside the working directory or the draft's own directory (where the
-    interview saves it, beside the plan): a draft is data, and data may be hostile."""
-    if value is None:
-        return None
-    real = Path(value).resolve()
-    if not any(real.is_relative_to(d) for d in (Path.cwd().resolve(), Path(draft).resolve().parent)):
-        raise StagewatchError(f"the draft names '{value}' as its {key}, which is outside the working directory "
-                              "and the draft's directory",
-                              file=draft, expected=f"give that path on the command line to confirm it "
-                              f"({'-o' if key == 'output' else 'PLAN.yaml'})")
-    return value
-
-
-def command(args: argparse.Namespace) -> int:
-    known: dict[str, Any] = {}
-    output = args.output
-    existing_plan = args.plan
-    if args.resume:
-        draft = load_answers(args.resume)
-        known.update(draft["answers"])
-        output = output or _from_draft(draft.get("output"), "output", args.resume)
-        existing_plan = existing_plan or _from_draft(draft.get("plan"), "plan", args.resume)
-    if args.answers:
-        known.update(load_answers(args.answers)["answers"])
-    output = output or existing_plan or "plan.yaml"
-    interactive = not args.answers
-    if interactive and not has_terminal():
-        raise StagewatchError("the interview needs a terminal; without one, replay answers with "
-                              "`stagewatch interview --answers FILE`, or write a pipeline description and run "
-                              "`stagewatch propose PIPELINE.yaml -o PLAN.yaml`")
-    session = Session(known, interactive=interactive)
-    draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
-    try:
-        lines = run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
-    except (Interrupted, KeyboardInterrupt):  # at a prompt or while the plan is being composed
-        save_draft(draft_path, session, output, existing_plan)
-        print(f"\nstopped; your answers are saved in {draft_path}\n"
-              f"continue with: stagewatch interview --resume {draft_path}", file=sys.stderr)
-        return EXIT_INTERRUPTED
-    for line in lines:
-        print(line)
-    if args.resume and draft_path.exists():
-        draft_path.unlink()
-        print(f"removed the draft {draft_path}: everything in it is in the plan now")
-    return EXIT_OK
-
-
-def add_parser(sub: Any) -> None:
-    p = sub.add_parser("interview", help="build a plan by answering questions in the terminal",
-                       description="Walk through the pipeline stage by stage, review the proposal, and write a "
-                       "lint-clean plan and its pipeline description. Ctrl-C saves a draft. With PLAN.yaml, "
-                       "reopen that plan to add or revise stages, then merge as propose does.")
-    p.add_argument("plan", nargs="?", metavar="PLAN.yaml", help="an existing plan to revise")
-    p.add_argument("-o", "--output", metavar="PLAN.yaml", help="where to write the plan (default: plan.yaml)")
-    p.add_argument("--resume", metavar="DRAFT", help="continue an interview saved on Ctrl-C")
-    p.add_argument("--answers", metavar="FILE", help="replay answers from FILE without a terminal (unanswered "
-                   "questions take their defaults)")
-    p.set_defaults(func=command)

@@ -13,6 +13,8 @@ from typing import Any, Protocol, Sequence
 
 import networkx as nx
 
+from stagewatch.graph import plan_graph
+
 ALERTING = ("warn", "critical")
 CAVEAT = ("A likely explanation from graph position and which checks alert together, not a proof: confirm it "
           "in the logs and with the stage owners.")
@@ -27,15 +29,6 @@ class _Row(Protocol):
     edge: dict[str, str] | None
 
 
-def _graph(plan: dict[str, Any]) -> nx.DiGraph:
-    g = nx.DiGraph()
-    for stage in plan["stages"]:
-        g.add_node(stage["id"])
-        for up in stage.get("upstream", []) or []:
-            g.add_edge(up, stage["id"])
-    return g
-
-
 def _producer_of(row: _Row, upstream: list[str], output_columns: dict[str, set[str]]) -> str | None:
     """The upstream stage whose hand-off an input check reads, if any."""
     if row.edge and row.edge.get("side") == "downstream":
@@ -47,7 +40,7 @@ def _producer_of(row: _Row, upstream: list[str], output_columns: dict[str, set[s
 
 
 def attribute(plan: dict[str, Any], rows: Sequence[_Row]) -> list[dict[str, Any]]:
-    g = _graph(plan)
+    g = plan_graph(plan)
     order = list(nx.topological_sort(g))
     alerts: dict[str, list[_Row]] = {}
     for row in rows:

@@ -13,17 +13,19 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
-import networkx as nx
 
 from stagewatch import durations, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.errors import StagewatchError
-from stagewatch.escape import go_template_literal, markdown_code, markdown_text, matcher_value
+from stagewatch.escape import go_template_literal
 from stagewatch.names import alert_name
-from stagewatch.names import receivers as receiver_names
 from stagewatch.safewrite import STDOUT, safe_write_all
 from stagewatch.exporters import live_metrics
-from stagewatch.exporters.signals import (FAMILIES, CounterLevelSignal, Series, ShareSignal, Signal, counter,
+from stagewatch.exporters.alertmanager import (AM_HEADER, alertmanager_config, drift_below, explains_drift,
+                                                is_drift)
+from stagewatch.exporters.instrumentation import instrumentation_markdown
+from stagewatch.exporters.level_signals import CounterLevelSignal
+from stagewatch.exporters.signals import (FAMILIES, Series, ShareSignal, Signal, counter,
                                           signal_for)
 from stagewatch.plan import all_metrics
 
@@ -123,23 +125,6 @@ class Case:
     variant: str
     series: list[dict[str, str]]
     alert_tests: list[dict[str, Any]]
-
-
-def is_drift(metric: dict[str, Any]) -> bool:
-    """A drift check: an input or output distribution, mix or share that moves when the data moves. Only these
-    explain drift below them and only these may be held back by an upstream one: never a fault check (contract,
-    schema, missing or out-of-range values), a label-based quality check (harm itself) or a software check."""
-    catches = set(metric.get("catches", []))
-    return (metric["layer"] in ("input", "output") and not metric.get("on_labels") and "fault" not in catches
-            and bool(catches & {"data-drift", "concept-drift", "upstream-change"}))
-
-
-def explains_drift(metric: dict[str, Any]) -> bool:
-    """An input or output check that moves when the data or an upstream stage changes (a gate's pass rate, a
-    category mix, an unknown share): while critical, it is the likely cause of drift below it."""
-    catches = set(metric.get("catches", []))
-    return (metric["layer"] in ("input", "output") and not metric.get("on_labels")
-            and bool(catches & {"data-drift", "upstream-change"}))
 
 
 def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str) -> dict[str, str]:
@@ -382,7 +367,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
     blocks = [(s["id"], s, s.get("metrics", [])) for s in plan["stages"]]
     blocks.append((PIPELINE_STAGE, {"id": PIPELINE_STAGE}, plan.get("pipeline_metrics", [])))
     families: dict[str, dict[str, Any]] = {}
-    below_drift = _drift_below(plan, live)
+    below_drift = drift_below(plan, live)
     for stage_id, info, metrics in blocks:
         owner = info.get("owner") or plan.get("owner")
         if owner:
@@ -432,117 +417,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
     return PrometheusExport(groups, alertmanager_config(plan, sorted(owners)), instrumentation)
 
 
-def _drift_below(plan: dict[str, Any], live: set[str]) -> dict[str, list[str]]:
-    """Per stage, the live drift checks of every stage below it (what its drift alerts may explain)."""
-    graph = nx.DiGraph()
-    graph.add_nodes_from(s["id"] for s in plan["stages"])
-    graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []))
-    drift = {s["id"]: [m["id"] for m in s.get("metrics", []) if m["id"] in live and is_drift(m)]
-             for s in plan["stages"]}
-    order = {s["id"]: i for i, s in enumerate(plan["stages"])}
-    return {s: [c for d in sorted(nx.descendants(graph, s), key=order.__getitem__) for c in drift[d]]
-            for s in graph}
-
-
-def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, Any]:
-    pipeline = plan["pipeline"]
-    graph = nx.DiGraph()
-    graph.add_nodes_from(s["id"] for s in plan["stages"])
-    graph.add_edges_from((u, s["id"]) for s in plan["stages"] for u in s.get("upstream", []))
-    order: dict[str, int] = {s["id"]: i for i, s in enumerate(plan["stages"])}
-    inhibit = [{
-        # A critical alert hides the warn alert of the same check.
-        "source_matchers": ['level="critical"'], "target_matchers": ['level="warn"'],
-        "equal": ["alertname", "pipeline", "stage"],
-    }]
-    for stage in plan["stages"]:
-        below = sorted(nx.descendants(graph, stage["id"]), key=lambda n: order[n])
-        if not below:
-            continue
-        # Only a critical input or output alert upstream that moves with the data explains drift below; a software
-        # alert (a model's age) holds back nothing, and contract, quality and software alerts below are never
-        # held back (their `drift` label is false).
-        inhibit.append({
-            "source_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
-                                'level="critical"', 'explains="true"'],
-            "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
-                                'drift="true"'],
-            "equal": ["pipeline"],
-        })
-    receivers = [{"name": "stagewatch-default",
-                  "webhook_configs": [{"url": "http://127.0.0.1:9095/stagewatch/default"}]}]
-    routes = []
-    receiver_of = receiver_names(owners, reserved=["stagewatch"])  # "stagewatch" would meet stagewatch-page
-    for owner in owners:
-        child = []
-        for severity in ("page", "ticket"):
-            name = f"{receiver_of[owner]}-{severity}"
-            receivers.append({"name": name, "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{name}"}]})
-            child.append({"receiver": name, "matchers": [f'severity="{severity}"']})
-        routes.append({"receiver": f"{receiver_of[owner]}-ticket", "matchers": [f'owner="{matcher_value(owner)}"'],
-                       "routes": child})
-    for severity in ("page", "ticket"):
-        receivers.append({"name": f"stagewatch-{severity}",
-                          "webhook_configs": [{"url": f"http://127.0.0.1:9095/stagewatch/{severity}"}]})
-        routes.append({"receiver": f"stagewatch-{severity}", "matchers": [f'severity="{severity}"']})
-    return {
-        "route": {"receiver": "stagewatch-default", "group_by": ["pipeline", "stage", "alertname"],
-                  "group_wait": "30s", "group_interval": "5m", "repeat_interval": "4h", "routes": routes},
-        "inhibit_rules": inhibit,
-        "receivers": receivers,
-    }
-
-
 RULES_HEADER = "# Generated by `stagewatch export --to prometheus` from the plan; edit the plan, then re-export.\n"
-AM_HEADER = ("# Generated by stagewatch: routing by owner and severity, inhibition along the pipeline graph.\n"
-             "# The webhook URLs are placeholders: point them at your pager and ticket integrations.\n")
-
-
-def instrumentation_markdown(instr: dict[str, Any]) -> str:
-    lines = [f"# Instrumentation for {markdown_text(instr['pipeline'])}", "",
-             "What each stage must emit for the exported rules to work. Every series carries the labels `pipeline` "
-             "and `stage`; per-check series also carry `check` (the plan metric id). Reference gauges are "
-             "published from calibrated reference data; `stagewatch_check_statistic` by the data checks.", "",
-             "**Create every series at 0 when the stage starts**: every `bin` of "
-             "`stagewatch_check_bin_items_total` (every bin edge and every category the reference knows), every "
-             "counter of every check. A counter that first appears with its first item loses that item to "
-             "`increase()`; the rules read a bin whose series was never created as an empty bin, but only while "
-             "its reference share is published.", "",
-             "**PSI reference shares are smoothed**: publish (count + 0.5) / (total + 0.5 x bins) per bin, the "
-             "shares `stagewatch.binned.smoothed_shares` gives; the rules add the same 0.5 to every window count, so "
-             "the exported PSI equals the plan's PSI on the same counts.", "",
-             "| Metric | Type | Labels | What it is |", "|---|---|---|---|"]
-    for fam in instr["families"]:
-        lines.append(f"| `{fam['name']}` | {fam['type']} | {', '.join(fam['labels'])} | {fam['help']} |")
-    lines += ["", "## Per stage", ""]
-    by_stage: dict[str, list[tuple[str, dict[str, Any]]]] = {}
-    for fam in instr["families"]:
-        for use in fam["uses"]:
-            by_stage.setdefault(use["stage"], []).append((fam["name"], use))
-    for stage in instr["stages"]:
-        uses = by_stage.get(stage, [])
-        if not uses:
-            continue
-        lines += [f"### {markdown_code(stage)}", "", "| Metric | check | Notes |", "|---|---|---|"]
-        for name, use in uses:
-            notes = []
-            if "bins" in use:
-                notes.append(f"{use['bins']} bins, `bin` = 0..{int(use['bins']) - 1}")
-            if "bucket_le" in use:
-                notes.append(f"needs bucket le={use['bucket_le']}")
-            if "field" in use:
-                notes.append(f"field {markdown_code(use['field'])}")
-            if "reference_share" in use:
-                notes.append(f"reference share until calibrated: {use['reference_share']:g}")
-            if use.get("at_label_arrival"):
-                notes.append("increment when the label arrives, for labelled items only")
-            check = use["check"] if name not in ("stagewatch_requests_total", "stagewatch_request_errors_total",
-                                                 "stagewatch_request_duration_seconds") else "(none)"
-            lines.append(f"| `{name}` | {markdown_code(check)} | {'; '.join(notes)} |")
-        lines.append("")
-    return "\n".join(lines) + "\n"
-
-
 def export_prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
     if target == STDOUT:
         raise StagewatchError("the Prometheus export is a directory of files and cannot go to standard output",
