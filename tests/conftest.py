@@ -1,6 +1,7 @@
 from __future__ import annotations
 
 import shutil
+import subprocess
 import sys
 import textwrap
 from pathlib import Path
@@ -30,6 +31,17 @@ def write(tmp_path):
         return path
 
     return _write
+
+
+def tool(name: str) -> str:
+    """The path of a real tool the tests run; `make test` installs them (.ci/install-tools)."""
+    path = shutil.which(name)
+    assert path, f"{name} is not installed; `make test` installs it (.ci/install-tools)"
+    return path
+
+
+def run_tool(*args: str, timeout: int = 600) -> subprocess.CompletedProcess:
+    return subprocess.run(list(args), capture_output=True, text=True, timeout=timeout)
 
 
 def stagewatch_command() -> str:

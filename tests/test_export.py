@@ -18,6 +18,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from conftest import all_pipelines
+from conftest import run_tool as _run
+from conftest import tool as _tool
 from stagewatch import durations
 from stagewatch.exporters.checks import checks_document
 from stagewatch.exporters.prometheus import alert_name, build, export_prometheus
@@ -27,16 +29,6 @@ from stagewatch.resources import validator
 from stagewatch.spec import load_pipeline
 
 pytestmark = pytest.mark.slow  # promtool, amtool and live servers
-
-
-def _tool(name: str) -> str:
-    path = shutil.which(name)
-    assert path, f"{name} is not installed; `make test` installs it (.ci/install-tools)"
-    return path
-
-
-def _run(*args: str, timeout: int = 600) -> subprocess.CompletedProcess:
-    return subprocess.run(list(args), capture_output=True, text=True, timeout=timeout)
 
 
 @pytest.fixture(scope="module", params=all_pipelines(), ids=lambda p: p.stem)

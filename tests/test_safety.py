@@ -21,22 +21,14 @@ from pathlib import Path
 import pytest
 import yaml
 from conftest import SMALL, stagewatch_command
+from conftest import run_tool as _run
+from conftest import tool as _tool
 
 from stagewatch import plan as plan_mod
 from stagewatch.cli import main
 from stagewatch.safewrite import Snapshot, safe_write
 
 ROOT = Path(__file__).resolve().parent.parent
-
-
-def _tool(name: str) -> str:
-    path = shutil.which(name)
-    assert path, f"{name} is not installed; `make test` installs it (.ci/install-tools)"
-    return path
-
-
-def _run(*args: str, timeout: int = 600) -> subprocess.CompletedProcess:
-    return subprocess.run(list(args), capture_output=True, text=True, timeout=timeout)
 
 
 @pytest.fixture

@@ -48,6 +48,17 @@ def _guard(target: str | None, inputs: list[str]) -> None:
         resolve_target(target, inputs)
 
 
+def _emit(text: str, output: str | None, inputs: list[str], what: str) -> None:
+    """A result to its file (never over an input) or to standard output."""
+    if output:
+        from stagewatch import yamlio
+
+        yamlio.write_atomic(output, text, inputs=inputs)
+        print(f"wrote {output}: {what}", file=sys.stderr)
+    else:
+        sys.stdout.write(text)
+
+
 def _calibrate(args: argparse.Namespace) -> int:
     from stagewatch.data.baseline import calibrate, load_baseline
     from stagewatch.data.sources import parse_data_args
@@ -83,7 +94,6 @@ def _check(args: argparse.Namespace) -> int:
     from stagewatch.data import report
     from stagewatch.data.check import exit_code, run_check
     from stagewatch.data.sources import parse_data_args
-    from stagewatch.plan import load_plan
 
     data = parse_data_args(args.data)
     inputs = _inputs(args, data)
@@ -97,17 +107,13 @@ def _check(args: argparse.Namespace) -> int:
     elif args.format == "markdown":
         text = report.to_markdown(result)
     elif args.format == "openmetrics":
-        plan, _ = load_plan(args.plan)
-        text = report.to_openmetrics(result, plan.get("pipeline", ""))
+        text = report.to_openmetrics(result, result.pipeline)
     if text is None:
         if args.output:
             yamlio.write_atomic(args.output, report.to_markdown(result), inputs=inputs)
         report.print_table(result)
-    elif args.output:
-        yamlio.write_atomic(args.output, text, inputs=inputs)
-        print(f"wrote {args.output}: {report.summary_line(result)}", file=sys.stderr)
     else:
-        sys.stdout.write(text)
+        _emit(text, args.output, inputs, report.summary_line(result))
     return exit_code(result)
 
 
@@ -116,7 +122,6 @@ def _replay(args: argparse.Namespace) -> int:
     from stagewatch.data import replay_report
     from stagewatch.data.replay import exit_code, run_replay
     from stagewatch.data.sources import parse_data_args
-    from stagewatch.plan import load_plan
 
     data = parse_data_args(args.data)
     inputs = _inputs(args, data)
@@ -130,7 +135,7 @@ def _replay(args: argparse.Namespace) -> int:
     with _progress(len(data)) as step:
         result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
                             time_column=args.time_column, injection=args.inject, progress=step)
-    plan, _ = load_plan(args.plan)
+    plan = result.plan
     if args.format == "table":
         if args.output:
             yamlio.write_atomic(args.output, replay_report.to_markdown(result, plan), inputs=inputs)
@@ -138,34 +143,24 @@ def _replay(args: argparse.Namespace) -> int:
     else:
         text = (replay_report.to_json(result, plan) if args.format == "json"
                 else replay_report.to_markdown(result, plan))
-        if args.output:
-            yamlio.write_atomic(args.output, text, inputs=inputs)
-            print(f"wrote {args.output}", file=sys.stderr)
-        else:
-            sys.stdout.write(text)
+        _emit(text, args.output, inputs, "the replay")
     return exit_code(result)
 
 
 def _delay_table(args: argparse.Namespace, data: dict[str, str], changes: list[str], inputs: list[str]) -> int:
     """``--inject`` with several sizes: replay once per size and print the detection delay of each check."""
-    from stagewatch import yamlio
     from stagewatch.data import replay_report
     from stagewatch.data.replay import affected, run_replay
     from stagewatch.errors import EXIT_OK
-    from stagewatch.plan import load_plan
 
-    plan, _ = load_plan(args.plan)
     rows = []
     for change in changes:
         with _progress(len(data)) as step:
             result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
                                 time_column=args.time_column, injection=change, progress=step)
-        rows.append((change, {c.id: c.detection_delay_s for c in affected(result, plan)}))
+        rows.append((change, {c.id: c.detection_delay_s for c in affected(result, result.plan)}))
     text = replay_report.delay_table(rows, "json" if args.format == "json" else "markdown")
-    if args.output:
-        yamlio.write_atomic(args.output, text, inputs=inputs)
-    else:
-        sys.stdout.write(text)
+    _emit(text, args.output, inputs, "detection delay by change size")
     return EXIT_OK
 
 

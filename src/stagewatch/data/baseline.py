@@ -145,14 +145,8 @@ def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column
 
     plan, _ = load_plan(plan_path)
     by_stage = contract.checks_by_stage(plan)
-    known = {s["id"] for s in plan["stages"]}
-    for stage in data:
-        if stage not in known:
-            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path,
-                                  expected="one of " + ", ".join(sorted(known)))
-    lo, hi = sources.parse_time(start, "--from"), sources.parse_time(end, "--to")
-    if lo is not None and hi is not None and lo >= hi:
-        raise StagewatchError("--from is not before --to", expected="a reference period with --from < --to")
+    contract.check_stages(plan, data, plan_path)
+    lo, hi = sources.parse_period(start, end)
     con = sources.connect()
     stages: dict[str, Any] = {}
     lines = []

@@ -59,6 +59,7 @@ class CheckResult:
     service_checks: int
     stages_without_data: list[str]
     attribution: list[dict[str, Any]] = field(default_factory=list)
+    pipeline: str = ""
 
     def counts(self) -> dict[str, int]:
         return {v: sum(1 for r in self.rows if r.verdict == v) for v in VERDICTS}
@@ -169,7 +170,7 @@ def prepare(source: sources.Source, metrics: list[dict[str, Any]], stage_ref: di
 
 
 def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
-                 at: float, window_override: str | None) -> list[CheckRow]:
+                 at: float, window_override: str | None, span: tuple[float | None, float | None]) -> list[CheckRow]:
     rows, runnable = prepare(source, metrics, stage_ref, window_override)
     if not runnable:
         return rows
@@ -181,7 +182,7 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
     else:
         step = 0.0
         buckets = scan.run(con, source, aggregates)
-    first_ts, last_ts, *_ = scan.time_range(con, source)
+    first_ts, last_ts = span
     for r in runnable:
         metric, measure, ref, seconds = r.metric, r.measure, r.ref, r.seconds
         keys = [a.key for a in measure.aggregates(ref)]
@@ -252,17 +253,13 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
     if window not in (None, "all") and not durations.is_duration(window):
         raise StagewatchError(f"--window {window!r} is not a duration", expected="e.g. 1h, 1d or all")
     by_stage = contract.checks_by_stage(plan)
-    known = {s["id"] for s in plan["stages"]}
-    for stage in data:
-        if stage not in known:
-            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path,
-                                  expected="one of " + ", ".join(sorted(known)))
+    contract.check_stages(plan, data, plan_path)
     con = sources.connect()
     opened = [sources.open_source(con, stage, pattern, time_column, i) for i, (stage, pattern) in enumerate(data.items())]
+    spans = {s.stage: scan.time_range(con, s)[:2] for s in opened}  # one query per log, used twice
     moment = sources.parse_time(at, "--at")
     if moment is None:
-        lasts = [scan.time_range(con, s)[1] for s in opened]
-        found = [t for t in lasts if t is not None]
+        found = [last for _, last in spans.values() if last is not None]
         moment = max(found) if found else None
     rows: list[CheckRow] = []
     for source in opened:
@@ -279,11 +276,11 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
             rows += [_row(m, source.stage, m.get("window", ""), "insufficient", n=0,
                           words="the log has no rows with a readable timestamp") for m in metrics]
             continue
-        rows += _check_stage(con, source, metrics, stage_ref, moment, window)
+        rows += _check_stage(con, source, metrics, stage_ref, moment, window, spans[source.stage])
     service = sum(1 for s in plan["stages"] for m in s.get("metrics", [])
                   if contract.live(m) and m.get("layer") in ("input", "output") and not contract.in_log(m))
     result = CheckResult(at=moment, rows=rows, service_checks=service,
-                         stages_without_data=sorted(set(by_stage) - set(data)))
+                         stages_without_data=sorted(set(by_stage) - set(data)), pipeline=plan.get("pipeline", ""))
     result.attribution = attribute(plan, rows)
     return result
 

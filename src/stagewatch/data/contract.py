@@ -225,3 +225,14 @@ def log_columns_markdown(plan: dict[str, Any]) -> str:
             lines.append(f"| (rows) | one row per item | {', '.join(cell(i) for i in rows_only)} |")
         lines.append("")
     return "\n".join(lines) + "\n"
+
+
+def check_stages(plan: dict[str, Any], data: dict[str, str], plan_path: str) -> None:
+    """Refuse a ``--data STAGE=PATH`` whose stage the plan does not have."""
+    from stagewatch.errors import StagewatchError
+
+    known = {s["id"] for s in plan["stages"]}
+    for stage in data:
+        if stage not in known:
+            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path,
+                                  expected="one of " + ", ".join(sorted(known)))

@@ -86,6 +86,7 @@ class ReplayResult:
     planned_tickets: float | None
     injection: inject.Injection | None = None
     attribution: list[dict[str, Any]] = field(default_factory=list)
+    plan: dict[str, Any] = field(default_factory=dict, repr=False)  # the plan replayed (reports name its checks)
     attribution_at: float | None = None
 
     @property
@@ -258,20 +259,17 @@ def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start
         raise StagewatchError(f"--cadence {cadence!r} is not known", expected=" or ".join(CADENCES))
     plan, _ = load_plan(plan_path)
     base = load_baseline(baseline_dir, plan)
-    lo, hi = sources.parse_time(start, "--from"), sources.parse_time(end, "--to")
-    assert lo is not None and hi is not None
-    if lo >= hi:
-        raise StagewatchError("--from is not before --to", expected="a period with --from < --to")
+    lo, hi = sources.parse_period(start, end)
+    assert lo is not None and hi is not None  # both are required options
     change = inject.parse(injection) if injection else None
     if change and change.stage not in data:
         raise StagewatchError(f"--inject names stage '{change.stage}', which has no --data", expected="a stage given with --data")
     by_stage = contract.checks_by_stage(plan)
+    contract.check_stages(plan, data, plan_path)
     con = sources.connect()
     checks: list[CheckReplay] = []
     unmeasured: list[CheckRow] = []
     for index, (stage, pattern) in enumerate(data.items()):
-        if stage not in {s["id"] for s in plan["stages"]}:
-            raise StagewatchError(f"--data names stage '{stage}', which the plan does not have", file=plan_path)
         if progress:
             progress(stage)
         source = sources.open_source(con, stage, pattern, time_column, index)
@@ -288,7 +286,8 @@ def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start
                           budget_pages=float(plan.get("false_alarms_per_week", 1)),
                           budget_tickets=float(plan.get("false_tickets_per_week", 5)),
                           planned_pages=_figure(budget.get("expected_false_pages_per_week")),
-                          planned_tickets=_figure(budget.get("expected_false_tickets_per_week")), injection=change)
+                          planned_tickets=_figure(budget.get("expected_false_tickets_per_week")), injection=change,
+                          plan=plan)
     if change:
         _detection(result, plan)
     return result

@@ -136,6 +136,14 @@ def parse_time(text: str | None, option: str) -> float | None:
     return moment.timestamp()
 
 
+def parse_period(start: str | None, end: str | None) -> tuple[float | None, float | None]:
+    """``--from`` and ``--to`` as seconds since the epoch, refusing a period that ends before it starts."""
+    lo, hi = parse_time(start, "--from"), parse_time(end, "--to")
+    if lo is not None and hi is not None and lo >= hi:
+        raise StagewatchError("--from is not before --to", expected="a period with --from < --to")
+    return lo, hi
+
+
 def format_time(seconds: float | None) -> str | None:
     from datetime import datetime, timezone
 
