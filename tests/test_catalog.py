@@ -104,7 +104,10 @@ def test_every_kind_of_stage_gets_all_three_layers():
             ("online", "batch", "device")):
         proposals = _ids(Pipeline("p", [_stage(kind=kind, modality=modality, output=output,
                                                serving=serving)])).values()
-        assert {p.layer for p in proposals} == {"software", "input", "output"}, (kind, modality, output, serving)
+        expected = {"software", "input", "output"}
+        if kind == "source" and serving != "batch":
+            expected.discard("software")  # a sensor or outside feed runs none of the team's software (lint agrees)
+        assert {p.layer for p in proposals if p.owner != "pipeline"} == expected, (kind, modality, output, serving)
 
 
 def test_duplicate_rule_ids_are_rejected(tmp_path):

@@ -76,7 +76,7 @@ def test_check_and_replay_run_the_cusum_a_reviewer_asks_for(tmp_path, capsys):
     plan = tmp_path / "plan.yaml"
     assert main(["propose", str(tmp_path / "pipeline.yaml"), "-o", str(plan)]) == 0
     doc = yaml.safe_load(plan.read_text())
-    target = "spoilage_model.output.risk_unknown"
+    target = "spoilage_model.output.unknown_share"
     for stage in doc["stages"]:
         for metric in stage["metrics"]:
             if metric["id"] == target:
@@ -111,7 +111,7 @@ def test_the_prometheus_export_alerts_on_the_cusum_check_publishes(tmp_path):
 
     (tmp_path / "pipeline.yaml").write_text(COLD_STORE)
     plan = compose(load_pipeline(str(tmp_path / "pipeline.yaml")))
-    target = "spoilage_model.output.risk_unknown"
+    target = "spoilage_model.output.unknown_share"
     for stage in plan["stages"]:
         for metric in stage["metrics"]:
             if metric["id"] == target:
@@ -120,7 +120,7 @@ def test_the_prometheus_export_alerts_on_the_cusum_check_publishes(tmp_path):
     rules = [r for f in (tmp_path / "out" / "rules").glob("*.yml") for g in yaml.safe_load(f.read_text())["groups"]
              for r in g["rules"]]
     cusum = [r for r in rules if r.get("alert") == alert_name(target + "#cusum")]
-    assert cusum and 'check="spoilage_model.output.risk_unknown#cusum"' in " ".join(r.get("expr", "") for r in rules)
+    assert cusum and 'check="spoilage_model.output.unknown_share#cusum"' in " ".join(r.get("expr", "") for r in rules)
     promtool = shutil.which("promtool")
     assert promtool, "promtool is installed by `make test` (.ci/install-tools)"
     files = sorted(str(p) for p in (tmp_path / "out" / "tests").glob("*.yml"))

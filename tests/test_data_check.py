@@ -86,7 +86,7 @@ def test_healthy_logs_measure_every_declared_field_and_raise_no_critical(tmp_pat
     for c in doc["checks"]:
         if c["columns"] and set(c["columns"]) <= declared:
             assert c["verdict"] != "not_measured", c
-    assert {c["id"] for c in doc["checks"]} >= {"probe.input.temp_c_drift", "spoilage_model.output.risk_unknown"}
+    assert {c["id"] for c in doc["checks"]} >= {"probe.input.temp_c_drift", "spoilage_model.output.unknown_share"}
 
 
 def test_a_shift_at_the_source_is_critical_exits_4_and_names_the_source_first(tmp_path, cold_store, capsys):

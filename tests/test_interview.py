@@ -76,7 +76,9 @@ def test_a_whole_interview_with_defaults_gives_a_lint_clean_plan(keys, tmp_path)
     script += [CLEAR + "camera" + ENTER, ENTER, DOWN + ENTER, ENTER, ENTER, ENTER]  # source of images, records
     script += _learned_stage("sizer")
     script += [CLEAR + "packer" + ENTER, DOWN + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]  # rule-based gate
-    script += [ENTER] * 11  # accept all: three layers of three stages, then two layers of the whole pipeline
+    # accept all: the layers of three stages (a camera source runs none of the team's software, so it has no
+    # software layer), then two layers of the whole pipeline
+    script += [ENTER] * 10
     k = keys(script)
     out = tmp_path / "plan.yaml"
     session = interview.Session(interactive=True, out=lambda _: None)
@@ -105,7 +107,7 @@ def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
                CLEAR + "0" + ENTER + CLEAR + "fast" + ENTER + CLEAR + "500" + ENTER,
                "weight:kilos" + ENTER + CLEAR + "weight:numeric, site:category" + ENTER, ENTER]
     script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
-    script += [ENTER] * 8
+    script += [ENTER] * 7  # input and output of the source, three layers of the model, two of the pipeline
     keys(script)
     interview.run(interview.Session(interactive=True, out=lambda _: None), str(tmp_path / "plan.yaml"))
     # Each invalid answer was refused at the prompt (it stayed open for the next line), so only the valid ones
@@ -148,7 +150,7 @@ def test_ctrl_c_saves_a_draft_and_resume_loses_nothing(keys, tmp_path, capsys):
     assert saved["pipeline.name"] == "grading" and saved["stages.0.id"] == "feed" and saved["stages.0.kind"] == "source"
     assert "--resume" in capsys.readouterr().err and not out.exists()
     # Resume: only the remaining questions are asked.
-    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 8)
+    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 7)
     assert main(["interview", "--resume", str(draft)]) == 0
     assert k.asked[0] == "stages.0.modality"
     plan = yaml.safe_load(out.read_text())
@@ -185,7 +187,7 @@ stages.1.id: router
 stages.1.modality: image
 review.router.output: choose one by one
 review.router.output.accepted: [router.output.class_mix, router.output.confidence, router.output.quality,
-  router.output.non_finite_outputs]
+  router.output.non_finite_confidence]
 review.router.output.from_scanner_x.note: unused
 """.replace("review.router.output.from_scanner_x.note: unused\n", "") + extra)
     return path
@@ -239,7 +241,10 @@ def test_reopening_a_plan_adds_a_stage_and_keeps_decisions(tmp_path):
     assert plan["stages"][0]["metrics"][0]["note"] == "checked by the scanner vendor"
     statuses = {m["id"]: m["status"] for m in plan["stages"][1]["metrics"]}
     assert statuses["router.output.class_mix"] == "accepted"
-    assert any(m["id"] == "router.output.to_chutes_mix" for m in plan["stages"][1]["metrics"])
+    # the mix router sends to chutes is its class mix: one check, serving the hand-off's upstream side too
+    mix = next(m for m in plan["stages"][1]["metrics"] if m["id"] == "router.output.class_mix")
+    assert {"metric": "router.output.to_chutes_mix", "edge": {"from": "router", "to": "chutes", "side": "upstream"}} \
+        in mix["serves"]
     assert lint_file(str(out)) == []
 
 
@@ -311,9 +316,13 @@ def test_a_second_interview_keeps_the_earlier_description(tmp_path):
 def test_a_metric_that_no_longer_applies_can_be_kept_as_manual(tmp_path):
     out = tmp_path / "plan.yaml"
     assert main(["interview", "--answers", str(_answers(tmp_path)), "-o", str(out)]) == 0
-    revise = _add_chutes(tmp_path, "image", "gaps.stale.pipeline.output.final_quality: false\n")
+    # chutes packs 1,000 items an hour into 400 lots: items no longer flow one to one, so the end-to-end drop share
+    # no longer applies (an aggregating stage gets a yield check instead)
+    revise = _add_chutes(tmp_path, "image", "revise.0.stage.volume_per_hour: 400\n"
+                         "gaps.stale.pipeline.output.end_to_end_drop: false\n")
     assert main(["interview", str(out), "--answers", str(revise)]) == 0
     plan = yaml.safe_load(out.read_text())
-    kept = next(m for m in plan["pipeline_metrics"] if m["id"] == "pipeline.output.final_quality")
+    assert any(m["id"] == "chutes.output.items_per_output" for m in plan["stages"][2]["metrics"])
+    kept = next(m for m in plan["pipeline_metrics"] if m["id"] == "pipeline.output.end_to_end_drop")
     assert kept["source"] == "manual" and kept["status"] == "accepted"
     assert lint_file(str(out)) == []

@@ -69,6 +69,7 @@ def test_new_stage_adds_metrics_and_removed_rule_marks_stale(tmp_path, write):
     out = tmp_path / "plan.yaml"
     propose(str(source), str(out))
     _edit(out, "scorer.software.latency_slo", status="accepted")
+    _edit(out, "scorer.output.score_drift", critical=0.3, note="scores are sharper since v4")
     grown = SMALL + """
   - id: ranker
     kind: rule-based
@@ -85,7 +86,12 @@ def test_new_stage_adds_metrics_and_removed_rule_marks_stale(tmp_path, write):
     _, rep = propose(str(source), str(out))
     after = _metrics(out)
     assert any(mid.startswith("ranker.") for mid in rep.added)
-    assert "scorer.output.to_ranker_drift" in after and "ranker.input.from_scorer_drift" in after
+    # The scores scorer sends to ranker are the scores it emits: one check, now serving a second role (the
+    # hand-off's upstream side), keeps the reviewer's edit; the consumer's side is its own check in ranker's log.
+    drift = after["scorer.output.score_drift"]
+    assert "scorer.output.to_ranker_drift" not in after and "ranker.input.from_scorer_drift" in after
+    assert drift["critical"] == 0.3 and drift["note"] == "scores are sharper since v4"
+    assert {"from": "scorer", "to": "ranker", "side": "upstream"} in [r.get("edge") for r in drift["serves"]]
     stale = after["scorer.software.latency_slo"]
     assert stale["status"] == "stale" and stale["previous_status"] == "accepted"
     # The rule applies again: the reviewer's status comes back.

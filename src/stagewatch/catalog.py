@@ -19,6 +19,7 @@ from stagewatch.resources import data_dir, schema
 from stagewatch.spec import FieldSpec, Pipeline, Stage
 
 PIPELINE_OWNER = "pipeline"
+AGGREGATES_BELOW = 0.5  # emits fewer than half the items of its busiest upstream: it groups them (a design choice)
 _TRAITS = ("kind", "modality", "output", "serving", "labels", "change_rate")
 
 
@@ -82,10 +83,45 @@ def load_catalog(directory: str | Path | None = None) -> list[Rule]:
     return rules
 
 
+def aggregates(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -> bool:
+    """A stage that emits far fewer items than it receives (a lot plan, a daily summary), as opposed to a gate,
+    which drops items but passes the rest on one by one."""
+    ups = [stages[u].volume_per_hour for u in graph.upstream(stage.id)]
+    return bool(ups) and stage.output != "gate" and stage.volume_per_hour < AGGREGATES_BELOW * max(ups)
+
+
+def one_to_one(pipeline: Pipeline, graph: PipelineGraph) -> bool:
+    """Do items flow one to one from the sources to the end? Declared in the description, else inferred: no stage
+    aggregates."""
+    if pipeline.one_to_one is not None:
+        return pipeline.one_to_one
+    stages = {s.id: s for s in pipeline.stages}
+    return not any(aggregates(s, stages, graph) for s in pipeline.stages)
+
+
+def modality_enters(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -> bool:
+    """Data of this stage's modality enters the pipeline here, or an upstream gate of the same modality has just
+    changed it (dropped, cropped, clipped); anywhere else the same data was already checked upstream."""
+    same = [stages[u] for u in graph.upstream(stage.id) if stages[u].modality == stage.modality]
+    return not same or any(u.output == "gate" for u in same)
+
+
 def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph) -> bool:
     for key in _TRAITS:
         if key in cond and getattr(stage, key) not in cond[key]:
             return False
+    if "not_output" in cond and stage.output in cond["not_output"]:
+        return False
+    stages = {s.id: s for s in pipeline.stages}
+    if "has_own_inputs" in cond:
+        handed = _handed_over(stage, stages, graph)
+        own = not graph.upstream(stage.id) or any(f.name not in handed for f in stage.inputs)
+        if own != cond["has_own_inputs"]:
+            return False
+    if "modality_enters" in cond and modality_enters(stage, stages, graph) != cond["modality_enters"]:
+        return False
+    if "aggregates" in cond and aggregates(stage, stages, graph) != cond["aggregates"]:
+        return False
     if "context" in cond and pipeline.context not in cond["context"]:
         return False
     if "has_latency_slo" in cond and (stage.latency_slo_ms is not None) != cond["has_latency_slo"]:
@@ -97,9 +133,19 @@ def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph:
     return True
 
 
-def _fields(cond: dict[str, Any], stage: Stage) -> Iterator[FieldSpec]:
+def _handed_over(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -> set[str]:
+    """Input fields that arrive over a hand-off, where the hand-off's contract check already covers them."""
+    from stagewatch.data.contract import handoff_columns
+
+    return {c for u in graph.upstream(stage.id) for c in handoff_columns(stages[u], stage)}
+
+
+def _fields(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph) -> Iterator[FieldSpec]:
     fields = stage.inputs if cond["each"] == "input_field" else stage.outputs
+    handed = _handed_over(stage, {s.id: s for s in pipeline.stages}, graph) if "field_handed_over" in cond else set()
     for f in fields:
+        if "field_handed_over" in cond and (f.name in handed) != cond["field_handed_over"]:
+            continue
         if "field_type" in cond and f.type not in cond["field_type"]:
             continue
         if "field_has_range" in cond and (f.range is not None) != cond["field_has_range"]:
@@ -120,7 +166,7 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
                 continue
             values = {"stage": stage.id}
             if "each" in rule.when:
-                for f in _fields(rule.when, stage):
+                for f in _fields(rule.when, stage, pipeline, graph):
                     for template in rule.metrics:
                         v = {**values, "field": f.name}
                         out.append(Proposal(stage.id, template["name"].format(**v), rule, template, f, values=v))
@@ -150,6 +196,8 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
                                            for s in pipeline.stages):
             continue
         if "any_sink" in cond and not any(_traits_match(cond["any_sink"], s, pipeline, graph) for s in sinks):
+            continue
+        if "one_to_one" in cond and one_to_one(pipeline, graph) != cond["one_to_one"]:
             continue
         for template in rule.metrics:
             values = {"stage": PIPELINE_OWNER, "pipeline": pipeline.name}

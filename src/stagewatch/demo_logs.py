@@ -117,7 +117,7 @@ def stage_columns(stage: str, ts: np.ndarray, rng: np.random.Generator) -> Colum
         return {"weight_g": np.where(rng.random(n) < 0.003, np.nan, weight)}
     if stage == "carton_planner":
         return {"predicted_class": np.array(GRADES, dtype=object)[rng.choice(4, n, p=[0.3, 0.4, 0.2, 0.1])],
-                "schema_violations": np.zeros(n, dtype=bool)}
+                "items_in": rng.poisson(50, n)}  # fruit packed into each carton
     raise KeyError(stage)
 
 

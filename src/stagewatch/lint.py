@@ -7,9 +7,9 @@ from typing import Any, Iterator
 
 import jsonschema
 
-from stagewatch import durations, yamlio
+from stagewatch import durations, fold, yamlio
 from stagewatch.errors import StagewatchError
-from stagewatch.plan import budget_summary, pipeline_of
+from stagewatch.plan import all_metrics, budget_summary, pipeline_of
 from stagewatch.resources import validator
 
 LAYERS = ("software", "input", "output")
@@ -131,6 +131,7 @@ def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
                               f"{pair.get('long_window')}: at a burn rate of 1 or less the error budget lasts the "
                               f"whole SLO period, so this pages while the SLO is met", mid)
     yield from _coverage(doc)
+    yield from _duplicate_signals(doc)
     summary = budget_summary(plan)
     if summary["expected_false_pages_per_week"] > plan.get("false_alarms_per_week", 1) * (1 + 1e-9):
         yield Finding(path, doc.line_of(("false_alarms_per_week",)), "budget",
@@ -143,6 +144,18 @@ def _counts(metric: dict[str, Any]) -> bool:
     return metric["status"] in LIVE or (metric["status"] == "rejected" and bool((metric.get("note") or "").strip()))
 
 
+def _duplicate_signals(doc: yamlio.Document) -> Iterator[Finding]:
+    plan = doc.data
+    where = {m["id"]: ("stages", i, "metrics", j) for i, s in enumerate(plan["stages"])
+             for j, m in enumerate(s.get("metrics", []))}
+    where.update({m["id"]: ("pipeline_metrics", j) for j, m in enumerate(plan.get("pipeline_metrics", []))})
+    for first, later in fold.duplicates(all_metrics(plan)):
+        yield Finding(doc.path, doc.line_of((*where[later["id"]], "id")), "duplicate-signal",
+                      f"metrics '{first['id']}' and '{later['id']}' read the same column of the same log with the "
+                      "same statistic: one excursion would alert twice; keep one (reject the other with a note)",
+                      later["id"])
+
+
 def _coverage(doc: yamlio.Document) -> Iterator[Finding]:
     plan = doc.data
     path = doc.path
@@ -151,6 +164,8 @@ def _coverage(doc: yamlio.Document) -> Iterator[Finding]:
         metrics = [m for m in stage.get("metrics", []) if _counts(m)]
         line = doc.line_of(("stages", i, "id"))
         for layer in LAYERS:
+            if layer == "software" and stage.get("kind") == "source":
+                continue  # a sensor or an outside feed runs none of the team's software: its output count shows it
             if not any(m["layer"] == layer for m in metrics):
                 yield Finding(path, line, "coverage-layer", f"stage '{stage['id']}' has no {layer} metric (add "
                               f"one, or keep a rejected one with a note saying why)", stage["id"])
@@ -164,9 +179,8 @@ def _coverage(doc: yamlio.Document) -> Iterator[Finding]:
     for i, stage in enumerate(stages):
         for up in stage.get("upstream", []):
             for side, owner in (("upstream", up), ("downstream", stage["id"])):
-                ok = any(_counts(m) and (m.get("edge") or {}).get("from") == up
-                         and (m.get("edge") or {}).get("to") == stage["id"] and m["edge"]["side"] == side
-                         for m in by_id[owner].get("metrics", []))
+                ok = any(_counts(m) for m in fold.on_handoff(by_id[owner].get("metrics", []), up, stage["id"],
+                                                                side))
                 if not ok:
                     yield Finding(path, doc.line_of(("stages", i, "upstream")), "coverage-edge",
                                   f"hand-off {up} -> {stage['id']} has no check on its {side} side "

@@ -13,7 +13,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from stagewatch import durations, sizing, stats, yamlio
+from stagewatch import durations, fold, sizing, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
@@ -29,7 +29,7 @@ STATUSES = ("proposed", "accepted", "rejected", "stale")
 # Fields a reviewer edits; the fingerprint covers exactly these.
 EDITABLE = ("status", "measure", "statistic", "params", "unit", "window", "reference", "warn", "critical",
             "direction", "severity", "catches", "why", "note")
-METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "reads", "sequential", "statistic",
+METRIC_KEYS = ("id", "layer", "status", "previous_status", "source", "measure", "field", "edge", "serves", "reads", "sequential", "statistic",
                "params", "unit", "window", "reference", "warn", "critical", "direction", "severity", "catches",
                "why", "ml_test_score", "on_labels", "review", "note", "sizing", "fingerprint")
 
@@ -60,7 +60,6 @@ class _Context:
     def traffic(self, owner: str, edge: tuple[str, str] | None, quality: bool) -> sizing.Traffic:
         stages = self.stages
         if owner == PIPELINE_OWNER:
-            sources = [stages[s] for s in self.graph.sources]
             sinks = [stages[s] for s in self.graph.sinks]
             rates = [s.change_rate for s in self.pipeline.stages]
             fastest = min(rates, key=list(sizing.CHANGE_RATE_WINDOWS).index)
@@ -69,7 +68,9 @@ class _Context:
                 delays = [durations.parse(s.label_delay) for s in labelled if s.label_delay]
                 return sizing.Traffic(sum(s.labelled_per_hour for s in labelled), fastest,
                                       durations.format(max(delays)) if delays else None)
-            return sizing.Traffic(sum(s.volume_per_hour for s in sources), fastest)
+            # What reaches the end: end-to-end latency and the final output are counted where items leave the
+            # pipeline (summing the sources would count one fruit once per camera frame and once per weighing).
+            return sizing.Traffic(sum(s.volume_per_hour for s in sinks), fastest)
         stage = stages[edge[0]] if edge else stages[owner]
         if quality:
             return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay,
@@ -168,6 +169,7 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             draft["reads"] = reads
         fresh[draft["id"]] = draft
         traffic_of[draft["id"]] = traffic
+    fresh, folded = fold.fold(fresh)
     old = _existing_metrics(existing) if existing else {}
     merged: dict[str, dict[str, Any]] = {}
     kept: set[str] = set()
@@ -182,13 +184,23 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             metric.pop("fingerprint", None)
             if "reads" not in metric and "reads" in draft:  # written before the log contract existed
                 metric["reads"] = draft["reads"]
+            metric.pop("serves", None)  # the roles follow the catalog, not the review
+            if "serves" in draft:
+                metric["serves"] = draft["serves"]
             merged[metric_id] = metric
             kept.add(metric_id)
     for metric_id, before in old.items():
         if metric_id in merged:
             continue
         metric = copy.deepcopy(before)
-        if metric.get("source", "manual") != "manual" and metric.get("status") != "stale":
+        if metric_id in folded and before.get("fingerprint") == fingerprint(before):
+            continue  # generated, never edited, and now one role of another check
+        if metric_id in folded and metric.get("status") != "stale":
+            metric["previous_status"] = metric.get("status", "proposed")
+            metric["status"] = "stale"
+            metric["review"] = (f"the same signal is now checked once, by '{folded[metric_id]}' (see its serves); "
+                                "carry your edits over to it and delete this metric")
+        elif metric.get("source", "manual") != "manual" and metric.get("status") != "stale":
             metric["previous_status"] = metric.get("status", "proposed")
             metric["status"] = "stale"
             metric["review"] = f"rule '{metric.get('source')}' no longer applies; delete this metric or make it manual"

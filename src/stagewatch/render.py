@@ -11,6 +11,7 @@ from typing import Any, Sequence
 
 import jinja2
 
+from stagewatch import fold
 from stagewatch.escape import markdown_cell, markdown_code, markdown_text, mermaid_label
 from stagewatch.names import mermaid_id
 from stagewatch.plan import all_metrics
@@ -52,11 +53,19 @@ def _edges(plan: dict[str, Any]) -> list[dict[str, Any]]:
     for stage in plan["stages"]:
         for up in stage.get("upstream", []):
             def side(owner: str, name: str) -> list[dict[str, Any]]:
-                return [m for m in by_id[owner]["metrics"] if (m.get("edge") or {}).get("from") == up
-                        and m["edge"]["to"] == stage["id"] and m["edge"]["side"] == name]
+                return fold.on_handoff(by_id[owner]["metrics"], up, stage["id"], name)
             out.append({"from": up, "to": stage["id"], "upstream": side(up, "upstream"),
                         "downstream": side(stage["id"], "downstream")})
     return out
+
+
+def watch_first(plan: dict[str, Any], top: int = 3) -> list[dict[str, Any]]:
+    """The stages with the most stages downstream: the first ``top``, and every stage tied with the last of them."""
+    ordered = sorted(plan["stages"], key=lambda s: (-s.get("downstream_reach", 0), s["id"]))
+    if not ordered:
+        return []
+    cutoff = ordered[min(top, len(ordered)) - 1].get("downstream_reach", 0)
+    return [s for s in ordered if s.get("downstream_reach", 0) >= cutoff]
 
 
 def context(plan: dict[str, Any]) -> dict[str, Any]:
@@ -70,6 +79,7 @@ def context(plan: dict[str, Any]) -> dict[str, Any]:
         "status_counts": status_counts,
         "edges": _edges(plan),
         "watch_first": sorted(plan["stages"], key=lambda s: (-s.get("downstream_reach", 0), s["id"])),
+        "watch_top": watch_first(plan),
         "open": [m for m in metrics if m["status"] == "proposed"],
         "flagged": [m for m in metrics if m.get("review")],
     }

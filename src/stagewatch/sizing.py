@@ -123,7 +123,8 @@ def round_up(x: float, digits: int = 2) -> float:
 
 def _statistic(metric: dict[str, Any]) -> stats.Statistic:
     sides = 2 if metric["direction"] == "both" else 1
-    return stats.make(metric["statistic"], sides=sides, direction=metric["direction"],
+    tail = "below" if (metric.get("reads") or {}).get("condition") == "below_quantile" else "above"
+    return stats.make(metric["statistic"], sides=sides, direction=metric["direction"], tail=tail,
                       **(metric.get("params") or {}))
 
 

@@ -102,6 +102,7 @@ class Pipeline:
     false_alarms_per_week: float = 1.0
     false_tickets_per_week: float = 5.0
     thresholds_from_data: str = "raise"
+    one_to_one: bool | None = None  # items flow one to one from sources to the end; None: inferred from volumes
     owner: str | None = None
     description: str | None = None
     source_path: str | None = None
@@ -121,6 +122,8 @@ class Pipeline:
         out["false_tickets_per_week"] = self.false_tickets_per_week
         if self.thresholds_from_data != "raise":
             out["thresholds_from_data"] = self.thresholds_from_data
+        if self.one_to_one is not None:
+            out["one_to_one"] = self.one_to_one
         if self.owner is not None:
             out["owner"] = self.owner
         out["stages"] = [s.to_dict() for s in self.stages]
@@ -211,6 +214,7 @@ def from_document(doc: yamlio.Document) -> Pipeline:
         false_alarms_per_week=data.get("false_alarms_per_week", 1),
         false_tickets_per_week=data.get("false_tickets_per_week", 5),
         thresholds_from_data=data.get("thresholds_from_data", "raise"),
+        one_to_one=data.get("one_to_one"),
         owner=data.get("owner"),
         description=data.get("description"),
         source_path=doc.path,

@@ -281,6 +281,7 @@ class Quantile(Proportion):
     """
 
     q: float = 0.95
+    tail: str = "above"  # which tail the log counts: "above" the q-quantile, or "below" the (1 - q)-quantile
     name: str = "quantile"
     unit: str = "change in share beyond the reference quantile"
 
@@ -294,7 +295,8 @@ class Quantile(Proportion):
                                          self.q, self._direction(), shift)
 
     def describe(self):
-        return (f"share of values beyond the reference {self.q:g}-quantile against {1 - self.q:g}, exact "
+        level, side = (1 - self.q, "below") if self.tail == "below" else (self.q, "above")
+        return (f"share of values {side} the reference {level:g}-quantile against {1 - self.q:g}, exact "
                 f"beta-binomial law (the quantile estimated from the reference sample)")
 
 

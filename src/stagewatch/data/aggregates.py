@@ -44,6 +44,18 @@ def number(name: str, transform: str | None = None) -> exp.Expression:
     return exp.TryCast(this=col(name), to=exp.DataType.build("DOUBLE"))
 
 
+ERRORS = ("squared_error", "abs_error")
+
+
+def error(kind: str, name: str, other: str) -> exp.Expression:
+    """A prediction's error against its label, per row: (a - b) squared, or |a - b|; NULL where either is not a
+    number (rows without a label)."""
+    diff = exp.paren(exp.Sub(this=number(name), expression=number(other)))
+    if kind == "squared_error":
+        return exp.Mul(this=diff, expression=diff.copy())
+    return exp.Abs(this=diff)
+
+
 def text(name: str) -> exp.Expression:
     return exp.cast(col(name), "VARCHAR")
 

@@ -45,6 +45,15 @@ def handoff_column(stage: Stage) -> str:
     return output_column(stage)
 
 
+def handoff_columns(stage: Stage, consumer: Stage | None) -> list[str]:
+    """The columns ``consumer`` logs of what it receives from ``stage``: for a stage that passes items on unchanged,
+    the fields both declare (a load cell's weight), else the item id; for any other stage, its output column."""
+    if not stage.outputs and stage.output in ("gate", "records"):
+        shared = [f.name for f in stage.inputs if consumer and any(c.name == f.name for c in consumer.inputs)]
+        return shared or ["record_id"]
+    return [handoff_column(stage)]
+
+
 def _has_values(stage: Stage) -> bool:
     return bool(stage.outputs) or stage.output not in ("gate", "records")
 
@@ -99,6 +108,8 @@ def reads_for(template: dict[str, Any] | None, *, owner: Stage | None, pipeline:
         for item in reads["columns"]:
             if item == "{inputs}":
                 columns.extend(f.name for f in log_stage.inputs)
+            elif item == "{handoff}":
+                columns.extend(handoff_columns(producer, log_stage))
             else:
                 columns.append(item.format(**values))
         reads["columns"] = columns

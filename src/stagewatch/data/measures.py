@@ -64,7 +64,10 @@ class Measure:
 
     def value_expr(self) -> exp.Expression:
         assert self.column is not None
-        return ag.number(self.column, self.reads.get("transform"))
+        transform = self.reads.get("transform")
+        if transform in ag.ERRORS:
+            return ag.error(transform, self.column, self.reads["other_column"])
+        return ag.number(self.column, transform)
 
     def is_categorical(self) -> bool:
         return self.statistic == "chi_square" or self.condition == "unseen"

@@ -179,6 +179,7 @@ class AlertsSignal(GaugeLevelSignal):
 _LEVELS: dict[str, tuple[type, dict[str, Any]]] = {
     "software.batch.run_success": (CounterLevelSignal, {}),
     "mlts.numerical": (CounterLevelSignal, {}),
+    "mlts.numerical_confidence": (CounterLevelSignal, {}),
     "mlts.dependencies": (CounterLevelSignal, {}),
     "software.online.saturation": (GaugeLevelSignal, {"family_key": "saturation"}),
     "mlts.staleness": (AgeSignal, {"family_key": "trained", "unit_seconds": 86400.0}),
