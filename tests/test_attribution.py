@@ -75,7 +75,7 @@ def test_a_change_only_after_the_hand_off_is_placed_on_the_hand_off(demo, tmp_pa
     assert group["where"] == "hand-off"
     assert group["origin"] == "blemish_scorer -> grade_assigner"
     verdicts = {r.id: r.verdict for r in result.rows}
-    assert verdicts["blemish_scorer.output.blemish_score_drift"] == "ok"  # the producer's side is quiet
+    assert verdicts["blemish_scorer.output.score_drift"] == "ok"  # the producer's side is quiet
 
 
 def test_the_demo_writes_its_check_reports_beside_the_plan(demo):

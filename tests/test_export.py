@@ -174,13 +174,13 @@ def test_an_upstream_change_inhibits_downstream_drift_alerts_in_alertmanager(tmp
     out = tmp_path / "export"
     export_prometheus(plan, str(out))
     checks = ["frame_gate.output.pass_rate",  # the cause: the gate passes fewer frames
-              "variety_tagger.input.brightness", "grade_assigner.input.from_blemish_scorer_drift",  # drift below
+              "variety_tagger.input.brightness", "grade_assigner.input.blemish_score_drift",  # drift below
               "grade_assigner.software.saturation"]  # not drift: a saturated grade_assigner still pages
     state = _alertmanager_states(tmp_path, out / "alertmanager.yml", [_exported(out, plan, c) for c in checks],
                                  lambda s: s["variety_tagger.input.brightness"]["inhibitedBy"])
     assert state["frame_gate.output.pass_rate"]["state"] == "active"
     assert state["variety_tagger.input.brightness"]["state"] == "suppressed"  # still listed, marked inhibited
-    assert state["grade_assigner.input.from_blemish_scorer_drift"]["inhibitedBy"]
+    assert state["grade_assigner.input.blemish_score_drift"]["inhibitedBy"]
     assert state["grade_assigner.software.saturation"]["state"] == "active"
 
 
@@ -188,8 +188,8 @@ def test_inhibition_never_hides_a_contract_or_quality_page_and_a_models_age_hide
     plan = compose(load_pipeline(str(all_pipelines()[0])))
     out = tmp_path / "export"
     export_prometheus(plan, str(out))
-    upstream_drift = "variety_tagger.output.to_grade_assigner_mix"
-    below = ["grade_assigner.input.from_variety_tagger_mix",  # drift below: held back
+    upstream_drift = "variety_tagger.output.attribute_mix"
+    below = ["grade_assigner.input.variety_mix",  # drift below: held back
              "grade_assigner.input.from_variety_tagger_contract",  # a contract break: harm, never held back
              "grade_assigner.output.quality"]  # label-based quality: harm itself, never held back
     alerts = [_exported(out, plan, c) for c in [upstream_drift, *below]]
@@ -210,7 +210,7 @@ def test_inhibition_never_hides_a_contract_or_quality_page_and_a_models_age_hide
     # the upstream alert names what it may explain
     mix = next(r for p in (out / "rules").glob("*.yml") for g in yaml.safe_load(p.read_text())["groups"]
                for r in g["rules"] if r.get("alert") == alert_name(upstream_drift) and r["labels"]["level"] == "critical")
-    assert "grade_assigner.input.from_variety_tagger_mix" in mix["annotations"]["likely_explains"]
+    assert "grade_assigner.input.variety_mix" in mix["annotations"]["likely_explains"]
 
 
 # --- a real Prometheus server scraping the example exporter -------------------------------------------------

@@ -112,6 +112,8 @@ def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph:
             return False
     if "not_output" in cond and stage.output in cond["not_output"]:
         return False
+    if "has_inputs" in cond and bool(stage.inputs) != cond["has_inputs"]:
+        return False
     stages = {s.id: s for s in pipeline.stages}
     if "has_own_inputs" in cond:
         handed = _handed_over(stage, stages, graph)

@@ -40,6 +40,14 @@ FIRST_RESPONSE = {
     "output": "Compare with this stage's input alerts: if inputs moved too, follow them upstream; if not, the "
               "stage itself changed (model, rules, configuration) or the world did (concept drift).",
 }
+# Where data enters the pipeline there is no upstream stage to look at first.
+FIRST_RESPONSE_AT_ENTRY = {
+    **FIRST_RESPONSE,
+    "input": "Data enters the pipeline here, so no stage above can explain it: look for a change in the source "
+             "itself (a new or moved sensor, a new supplier or client, a changed export) or in the world it measures.",
+    "output": "Data enters the pipeline here: if its input checks moved too, the source changed; if not, look at "
+              "how this stage records or forwards what it receives (firmware, configuration, a new release).",
+}
 
 
 def _inert(text: Any) -> str:
@@ -140,12 +148,13 @@ LABEL_COUNTING = ("counts labelled items when their label arrives, not when the 
                   "predictions shows here one label delay later")
 
 
-def _annotations(metric: dict[str, Any], level: str, threshold: float) -> dict[str, str]:
+def _annotations(metric: dict[str, Any], level: str, threshold: float, stage_info: dict[str, Any]) -> dict[str, str]:
+    first = FIRST_RESPONSE_AT_ENTRY if stage_info and not stage_info.get("upstream") else FIRST_RESPONSE
     out = {
         "summary": _inert(f"{metric['id']}: {metric.get('measure', '')} beyond {level} threshold "
                           f"{_fmt(threshold)} ({metric.get('unit', '')}) over {metric['window']}"),
         "description": _inert(metric.get("why", "")),
-        "first_response": _inert(FIRST_RESPONSE[metric["layer"]]),
+        "first_response": _inert(first[metric["layer"]]),
         "plan_metric": metric["id"],
     }
     if metric.get("on_labels"):
@@ -183,7 +192,7 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
         if sig.for_ != "0s":
             rule["for"] = sig.for_
         labels = _labels(metric, owner, level, severity)
-        annotations = _annotations(metric, level, threshold)
+        annotations = _annotations(metric, level, threshold, sig.stage_info)
         if explains and level == "critical":
             shown = ", ".join(explains[:EXPLAINS_SHOWN])
             more = len(explains) - EXPLAINS_SHOWN
@@ -292,7 +301,7 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
         clauses = [f"({record}:rate{p['long_window']}{sel} > {_fmt(p['burn_rate'] * budget)}\n"
                    f"   and {record}:rate{p['short_window']}{sel} > {_fmt(p['burn_rate'] * budget)})" for p in mine]
         threshold = min(p["burn_rate"] for p in mine)
-        annotations = _annotations(metric, level, threshold)
+        annotations = _annotations(metric, level, threshold, stage_info)
         annotations["summary"] = _inert(
             f"{metric['id']}: error budget of the {target:g} SLO burning at more than {_fmt(threshold)}x "
             f"({', '.join(p['long_window'] + '/' + p['short_window'] for p in mine)})")
