@@ -26,12 +26,14 @@ PALETTE = {
     "ok_bg": "#e6f4ee", "warn_bg": "#fff4e0", "critical_bg": "#fde8ea", "insufficient_bg": "#efeaf7",
     "not_measured_bg": "#eeeeee", "reference": "#767676", "reference_fill": "#e0e0e0", "window": "#005a9c",
 }
-# (text colour, background) of every text style the pages use: contrast must reach 4.5:1 (WCAG 2.x AA)
-TEXT_PAIRS = [("ink", "paper"), ("ink", "panel"), ("muted", "paper"), ("muted", "panel"), ("window", "paper"),
-              ("ink", "reference_fill")] + [
-    (v, f"{v}_bg") for v in ("ok", "warn", "critical", "insufficient", "not_measured")] + [
-    (v, "paper") for v in ("ok", "warn", "critical", "insufficient", "not_measured")] + [
-    ("ink", f"{v}_bg") for v in ("ok", "warn", "critical", "insufficient", "not_measured")]
+_BACKGROUNDS = ("paper", "panel", "reference_fill", "ok_bg", "warn_bg", "critical_bg", "insufficient_bg",
+                "not_measured_bg")
+# (text colour, background) of every text style the pages use: contrast must reach 4.5:1 (WCAG 2.x AA). Body and
+# muted text can sit on any background (a stage box takes its verdict's tint); a verdict's word sits on the page
+# or its own tint; the "likely origin" tag sits on any stage's tint.
+TEXT_PAIRS = [(fg, bg) for fg in ("ink", "muted", "critical") for bg in _BACKGROUNDS] + [
+    (v, bg) for v in ("ok", "warn", "insufficient", "not_measured", "window") for bg in ("paper", f"{v}_bg")
+    if bg in PALETTE]
 # shapes and bars against the page: 3:1 is the non-text contrast WCAG 2.1 asks of graphics (SC 1.4.11)
 GRAPHIC_PAIRS = [("line", "paper"), ("reference", "paper"), ("window", "paper")] + [
     (v, "paper") for v in ("ok", "warn", "critical", "insufficient", "not_measured")]
