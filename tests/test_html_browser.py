@@ -72,6 +72,9 @@ def test_a_real_browser_shows_the_page_on_screen_and_in_print(demo, name):
         assert browser.evaluate("matchMedia('print').matches") is True
         width = browser.evaluate("document.querySelector('svg.pipeline').getBoundingClientRect().right")
         assert width <= PRINT[0]  # the diagram shrinks to the page
+        widest = browser.evaluate("Math.max(...[...document.querySelectorAll('main *')].map("
+                                  "e => e.getBoundingClientRect().right))")
+        assert widest <= PRINT[0] + 0.5  # and so does every table: nothing is cut at the paper's edge
         assert browser.evaluate(HIDDEN) == 0  # in print, every stage's detail is shown
         height = min(browser.evaluate("document.documentElement.scrollHeight"), TALLEST)
         _keep(_not_blank(browser.screenshot(PRINT[0], height), PRINT[0]), name.replace(".html", "-print.png"))
