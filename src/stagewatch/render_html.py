@@ -55,7 +55,9 @@ VERDICTS = {
 def environment() -> jinja2.Environment:
     env = jinja2.Environment(loader=jinja2.FileSystemLoader(str(data_dir("templates") / "html")),
                              autoescape=True, trim_blocks=True, lstrip_blocks=True)
-    env.filters.update(text=visible, num=_num, pct=_pct, th=_threshold, stat=_stat_name)
+    from stagewatch.render import threshold
+
+    env.filters.update(text=visible, num=_num, th=threshold, stat=_stat_name)
     env.globals.update(palette=PALETTE, shapes=SHAPES, verdicts=VERDICTS)
     return env
 
@@ -64,16 +66,6 @@ def _num(x: Any) -> str:
     from stagewatch.data.report import fmt
 
     return fmt(x)
-
-
-def _pct(x: float | None) -> str:
-    return "–" if x is None else f"{100 * x:.3g}%"
-
-
-def _threshold(value: Any) -> str:
-    if value is None:
-        return "–"
-    return f"{value:g}" if isinstance(value, (int, float)) else str(value)
 
 
 def _stat_name(name: str) -> str:
