@@ -239,3 +239,24 @@ def test_every_verdict_has_its_own_word_and_shape(shifted):
         verdict = badge.get("class").split("v-")[1]
         assert every(badge, "path")[0].get("d") == SHAPES[VERDICTS[verdict][1]]
         assert texts(badge)
+
+
+def test_an_origin_on_a_hand_off_marks_the_arrow(write):
+    from stagewatch.data.check import CheckResult, CheckRow
+    from stagewatch.data.html_report import render_check
+
+    plan = compose(load_pipeline(str(write("p.yaml", SMALL))))
+    row = CheckRow(id="scorer.input.amount_drift", stage="scorer", layer="input", statistic="psi", window="1h",
+                   verdict="critical", value=0.4, warn=0.1, critical=0.25, n=500, m=10000,
+                   detail={"reference_counts": [50, 50], "window_counts": [90, 10], "edges": [50.0]})
+    attribution = [{"origin": "feed -> scorer", "stage": "scorer", "where": "hand-off", "explanation": "x",
+                    "checks": [row.id], "consequences": []}]
+    result = CheckResult(at=T0, rows=[row], service_checks=0, stages_without_data=[], attribution=attribution,
+                         pipeline="tiny", plan=plan)
+    text = render_check(result)
+    tree, _ = parse(text)
+    arrows = {(g.get("data-from"), g.get("data-to")): g.get("class") for g in every(tree, "g") if g.get("data-from")}
+    assert arrows == {("feed", "scorer"): "edge edge-origin"}
+    [section] = [s for s in every(tree, "section") if s.get("data-check") == row.id]
+    titles = [t.text for t in every(section, "title")]
+    assert "bin 1: 90% of the window" in titles and "bin 2: 50% of the reference" in titles
