@@ -6,7 +6,7 @@ the marks and where they go, so the drawing can be checked without a browser.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 import networkx as nx
@@ -59,7 +59,6 @@ class Diagram:
     stages: list[StageBox]
     edges: list[HandOff]
     layers: int = 0
-    notes: list[str] = field(default_factory=list)
 
 
 def _cut(text: str, limit: int) -> str:
