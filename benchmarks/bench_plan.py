@@ -1,4 +1,4 @@
-"""Benchmark: propose + lint + render for generated pipelines of 10, 100 and 1,000 stages.
+"""Benchmark: propose + lint + render (Markdown, then the HTML page) for generated pipelines of 10, 100 and 1,000 stages.
 
 Prints seconds per step and per (stage + edge), so that growth with pipeline size can be read off. Not a test.
 Run with `make bench` (or `python benchmarks/bench_plan.py [SIZES...]`).
@@ -20,6 +20,7 @@ from stagewatch.catalog import load_catalog
 from stagewatch.lint import lint_file
 from stagewatch.plan import compose, dump, load_plan
 from stagewatch.render import render
+from stagewatch.render_html import render as render_html
 from stagewatch.spec import load_pipeline
 
 KINDS = ["learned", "rule-based"]
@@ -70,26 +71,28 @@ def run(stages: int, workdir: Path, memory: bool = False) -> dict:
     loaded, _ = load_plan(str(plan_path))
     render(loaded, workdir / f"out{stages}")
     t3 = time.perf_counter()
+    render_html(loaded, workdir / f"out{stages}")
+    t4 = time.perf_counter()
     peak = tracemalloc.get_traced_memory()[1] if memory else 0
     if memory:
         tracemalloc.stop()
     metrics = sum(len(s["metrics"]) for s in plan["stages"])
     return {"stages": stages, "edges": edges, "metrics": metrics, "propose_s": t1 - t0, "lint_s": t2 - t1,
-            "render_s": t3 - t2, "total_s": t3 - t0, "peak_mib": peak / 2**20, "findings": len(findings)}
+            "render_s": t3 - t2, "html_s": t4 - t3, "total_s": t3 - t0, "peak_mib": peak / 2**20, "findings": len(findings)}
 
 
 def main(argv: list[str]) -> None:
     memory = "--memory" in argv  # tracemalloc slows Python code several times: times are then not comparable
     sizes = [int(a) for a in argv if a != "--memory"] or [10, 100, 1000]
     print(f"{'stages':>7} {'edges':>6} {'metrics':>8} {'propose s':>10} {'lint s':>8} {'render s':>9} "
-          f"{'total s':>8} {'ms/(stage+edge)':>16} {'peak MiB':>9}")
+          f"{'total s':>8} {'ms/(stage+edge)':>16} {'peak MiB':>9} {'html s':>7}")
     with tempfile.TemporaryDirectory() as tmp:
         for size in sizes:
             r = run(size, Path(tmp), memory)
             per = 1000 * r["total_s"] / (r["stages"] + r["edges"])
             peak = f"{r['peak_mib']:.1f}" if memory else "-"
             print(f"{r['stages']:>7} {r['edges']:>6} {r['metrics']:>8} {r['propose_s']:>10.2f} {r['lint_s']:>8.2f} "
-                  f"{r['render_s']:>9.2f} {r['total_s']:>8.2f} {per:>16.2f} {peak:>9}")
+                  f"{r['render_s']:>9.2f} {r['total_s']:>8.2f} {per:>16.2f} {peak:>9} {r['html_s']:>7.2f}")
             if r["findings"]:
                 print(f"        (lint found {r['findings']} finding(s) in the generated plan)")
 

@@ -67,7 +67,8 @@ def test_installed_command_runs_the_demo_end_to_end(tmp_path):
     result = subprocess.run([command, "demo", "-o", str(out)], capture_output=True, text=True, timeout=300)
     assert result.returncode == 0, result.stderr
     assert "lint" in result.stdout and "clean" in result.stdout
-    for name in ("pipeline.yaml", "plan.yaml", "plan.md"):
+    for name in ("pipeline.yaml", "plan.yaml", "plan.md", "plan.html", "check.html", "replay.html",
+                 "replay-change.html"):
         assert (out / name).exists() and str(out / name) in result.stdout
     lint = subprocess.run([command, "lint", str(out / "plan.yaml")], capture_output=True, text=True, timeout=120)
     assert lint.returncode == 0, lint.stdout

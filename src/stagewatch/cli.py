@@ -56,6 +56,10 @@ def _render(args: argparse.Namespace) -> int:
     from stagewatch.render import render
 
     plan, _ = load_plan(args.plan)
+    if args.format == "html":
+        from stagewatch.render_html import render as render_html
+
+        render = render_html
     for path in render(plan, args.output, inputs=[args.plan]):
         print(f"wrote {path}")
     return EXIT_OK
@@ -126,12 +130,16 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--format", choices=("text", "json"), default="text", help="output format (json for CI bots)")
     p.set_defaults(func=_lint)
 
-    p = sub.add_parser("render", help="write the plan as Markdown for review",
+    p = sub.add_parser("render", help="write the plan as Markdown (or HTML) for review",
                        description="Write DIR/plan.md: summary, Mermaid diagram, per-stage metrics by layer, "
-                       "hand-off table and open decisions.")
+                       "hand-off table and open decisions. --format html writes DIR/plan.html instead: one "
+                       "self-contained page with the pipeline drawn as SVG, open decisions first and each stage's "
+                       "detail collapsible.")
     p.add_argument("plan", metavar="PLAN.yaml")
     p.add_argument("-o", "--output", metavar="DIR", required=True,
                    help="directory to write into (-: standard output)")
+    p.add_argument("--format", choices=("markdown", "html"), default="markdown",
+                   help="markdown (default, plan.md) or html (plan.html)")
     p.set_defaults(func=_render)
 
     p = sub.add_parser("explain", help="show how one metric's window and thresholds were derived")

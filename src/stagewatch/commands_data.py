@@ -108,6 +108,10 @@ def _check(args: argparse.Namespace) -> int:
         text = report.to_markdown(result)
     elif args.format == "openmetrics":
         text = report.to_openmetrics(result, result.pipeline)
+    elif args.format == "html":
+        from stagewatch.data.html_report import render_check
+
+        text = render_check(result)
     if text is None:
         if args.output:
             yamlio.write_atomic(args.output, report.to_markdown(result), inputs=inputs)
@@ -141,8 +145,13 @@ def _replay(args: argparse.Namespace) -> int:
             yamlio.write_atomic(args.output, replay_report.to_markdown(result, plan), inputs=inputs)
         replay_report.print_table(result, plan)
     else:
-        text = (replay_report.to_json(result, plan) if args.format == "json"
-                else replay_report.to_markdown(result, plan))
+        if args.format == "html":
+            from stagewatch.data.html_report import render_replay
+
+            text = render_replay(result, plan)
+        else:
+            text = (replay_report.to_json(result, plan) if args.format == "json"
+                    else replay_report.to_markdown(result, plan))
         _emit(text, args.output, inputs, "the replay")
     return exit_code(result)
 
@@ -191,7 +200,9 @@ def add_parsers(sub: Any) -> None:
     _data_options(p)
     p.add_argument("--window", metavar="DURATION|all", help="one window for every check; all: the whole input")
     p.add_argument("--at", metavar="T", help="end of the window (ISO 8601; default: the latest timestamp)")
-    p.add_argument("--format", choices=("table", "json", "markdown", "openmetrics"), default="table")
+    p.add_argument("--format", choices=("table", "json", "markdown", "openmetrics", "html"), default="table",
+                   help="html: one self-contained page with the pipeline marked and the distributions of every "
+                   "alerting check")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
     p.set_defaults(func=_check)
 
@@ -212,7 +223,8 @@ def add_parsers(sub: Any) -> None:
     p.add_argument("--inject", metavar="STAGE.COLUMN=KIND:SIZE@T",
                    help="a change to apply from T: shift:SDs, scale:factor, swap:a/b, missing:share, volume:share; "
                    "several sizes (shift:0.5,1,2@T) print a table of detection delay by size")
-    p.add_argument("--format", choices=("table", "json", "markdown"), default="table")
+    p.add_argument("--format", choices=("table", "json", "markdown", "html"), default="table",
+                   help="html: one self-contained page with the pipeline marked and a timeline of firings per check")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
     p.set_defaults(func=_replay)
 

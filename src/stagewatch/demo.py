@@ -11,6 +11,7 @@ from stagewatch.lint import lint_document
 from stagewatch.plan import load_plan
 from stagewatch.propose import propose
 from stagewatch.render import render
+from stagewatch.render_html import render as render_html
 
 if TYPE_CHECKING:
     from stagewatch.data.check import CheckResult
@@ -58,6 +59,8 @@ def run_demo(out_dir: str) -> tuple[list[str], "CheckResult"]:
     lines.extend(f"  {f}" for f in findings)
     for path in render(plan, out):
         lines.append(f"wrote {path}: the plan for review (Markdown with a Mermaid diagram)")
+    for path in render_html(plan, out):
+        lines.append(f"wrote {path}: the plan as one HTML page (the pipeline drawn, open decisions first)")
     lines.extend(EXPORTERS["prometheus"](plan, str(out / "prometheus")))
     lines.extend(EXPORTERS["checks"](plan, str(out / "checks.json")))
     result, data_lines = _check_and_replay(plan, str(plan_path), out, data, str(baseline))
@@ -73,23 +76,29 @@ def _check_and_replay(plan: dict, plan_path: str, out: Path, data: dict[str, str
     """A check of the latest window, a replay of the reference weeks and one of the week the gate changed."""
     from stagewatch.data import replay_report, report
     from stagewatch.data.check import run_check
+    from stagewatch.data.html_report import render_check, render_replay
     from stagewatch.data.replay import detect, run_replay
     from stagewatch.data.sources import format_time
     from stagewatch.demo_logs import CHANGE, REFERENCE_END, START, iso
 
     lines = []
     result = run_check(plan_path, baseline, data)
-    for name, text in (("check.md", report.to_markdown(result)), ("check.json", report.to_json(result))):
+    for name, text in (("check.md", report.to_markdown(result)), ("check.json", report.to_json(result)),
+                       ("check.html", render_check(result))):
         yamlio.write_atomic(out / name, text)
         lines.append(f"wrote {out / name}: the check of the latest window")
     reference = run_replay(plan_path, baseline, data, start=iso(START), end=iso(REFERENCE_END))
-    yamlio.write_atomic(out / "replay.md", replay_report.to_markdown(reference, plan))
-    lines.append(f"wrote {out / 'replay.md'}: every check replayed over the reference weeks")
+    for name, text in (("replay.md", replay_report.to_markdown(reference, plan)),
+                       ("replay.html", render_replay(reference, plan))):
+        yamlio.write_atomic(out / name, text)
+        lines.append(f"wrote {out / name}: every check replayed over the reference weeks")
     lines.extend("  " + line for line in replay_report.summary_lines(reference))
     last = run_replay(plan_path, baseline, data, start=iso(REFERENCE_END), end=iso(CHANGE + 32 * 3600))
     found = detect(last, plan, CHANGE)
-    yamlio.write_atomic(out / "replay-change.md", replay_report.to_markdown(last, plan))
-    lines.append(f"wrote {out / 'replay-change.md'}: the week the frame gate was retuned ({format_time(CHANGE)})")
+    for name, text in (("replay-change.md", replay_report.to_markdown(last, plan)),
+                       ("replay-change.html", render_replay(last, plan))):
+        yamlio.write_atomic(out / name, text)
+        lines.append(f"wrote {out / name}: the week the frame gate was retuned ({format_time(CHANGE)})")
     for c in sorted(found, key=lambda c: c.detection_delay_s or 0)[:5]:
         lines.append(f"  first critical: {c.id} after {replay_report.duration_words(c.detection_delay_s)}")
     if last.attribution:

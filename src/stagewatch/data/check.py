@@ -60,6 +60,7 @@ class CheckResult:
     stages_without_data: list[str]
     attribution: list[dict[str, Any]] = field(default_factory=list)
     pipeline: str = ""
+    plan: dict[str, Any] = field(default_factory=dict, repr=False)  # the plan checked (the HTML report draws it)
 
     def counts(self) -> dict[str, int]:
         return {v: sum(1 for r in self.rows if r.verdict == v) for v in VERDICTS}
@@ -280,7 +281,8 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
     service = sum(1 for s in plan["stages"] for m in s.get("metrics", [])
                   if contract.live(m) and m.get("layer") in ("input", "output") and not contract.in_log(m))
     result = CheckResult(at=moment, rows=rows, service_checks=service,
-                         stages_without_data=sorted(set(by_stage) - set(data)), pipeline=plan.get("pipeline", ""))
+                         stages_without_data=sorted(set(by_stage) - set(data)), pipeline=plan.get("pipeline", ""),
+                         plan=plan)
     result.attribution = attribute(plan, rows)
     return result
 

@@ -237,12 +237,15 @@ class Measure:
         if s in ("psi", "ks", "chi_square"):
             win = self._matrix(counts, "cat" if s == "chi_square" else "bin")[0]
             rc = np.asarray(ref["counts"], dtype=float)
+            where = ({"categories": [*ref["categories"], "other"]} if s == "chi_square"
+                     else {"edges": [float(e) for e in ref["edges"]]})
             return Evaluation(value, n, m, self._distribution_words(ref, rc, win), {
-                "reference_counts": rc.astype(int).tolist(), "window_counts": win.astype(int).tolist()})
+                "reference_counts": rc.astype(int).tolist(), "window_counts": win.astype(int).tolist(), **where})
         if s == "mean":
             mean = counts["sum"] / counts["n"]
             return Evaluation(value, n, m, f"mean {_num(mean)} against {_num(ref['mean'])} in the reference "
-                              f"({value:+.2f} reference SD)", {"mean": mean})
+                              f"({value:+.2f} reference SD)", {"mean": mean, "reference_mean": ref["mean"],
+                                                               "reference_sd": ref["sd"]})
         if s == "count":
             rows = int(counts["n"])
             return Evaluation(value, n, None, f"{rows:,} rows against {expected:,.0f} expected ({value:+.0%})",
