@@ -11,6 +11,7 @@ from typing import Any
 
 import networkx as nx
 
+from stagewatch import fold
 from stagewatch.graph import plan_graph
 from stagewatch.layout import Layout, Rect, layered
 
@@ -83,10 +84,10 @@ def handoff_sides(plan: dict[str, Any]) -> dict[tuple[str, str], dict[str, list[
             out[(up, stage["id"])] = {"upstream": [], "downstream": []}
     for stage in plan["stages"]:
         for m in _live(stage.get("metrics", [])):
-            edge = m.get("edge") or {}
-            key = (edge.get("from"), edge.get("to"))
-            if key in out and edge.get("side") in ("upstream", "downstream"):
-                out[key][edge["side"]].append(m)  # type: ignore[index]
+            for edge in fold.handoff_sides(m):  # born on the hand-off, or folded into a stage's own check
+                key = (edge.get("from"), edge.get("to"))
+                if key in out and edge.get("side") in ("upstream", "downstream"):
+                    out[key][edge["side"]].append(m)  # type: ignore[index]
     return out
 
 
