@@ -169,3 +169,53 @@ def test_window_auto_written_by_a_reviewer_is_sized_again(tmp_path, write):
     propose(str(source), str(out))
     metric = _metrics(out)["scorer.output.score_drift"]
     assert metric["window"] != "auto" and metric["note"] == "size this again please"
+
+
+def _metric_blocks(text: str) -> dict[str, str]:
+    """Each metric's lines in the written plan, by id."""
+    blocks: dict[str, str] = {}
+    current = None
+    for line in text.splitlines():
+        stripped = line.strip()
+        if stripped.startswith("- id: ") and "." in stripped:
+            current = stripped[len("- id: "):]
+            blocks[current] = ""
+        elif stripped.startswith("- id: ") or not line.startswith(" "):
+            current = None
+        if current:
+            blocks[current] += line + "\n"
+    return blocks
+
+
+def _touches(metric: dict, stage: str) -> bool:
+    sides = [metric.get("edge") or {}] + [r.get("edge") or {} for r in metric.get("serves", [])]
+    return metric["id"].startswith(stage + ".") or any(stage in (e.get("from"), e.get("to")) for e in sides)
+
+
+def test_a_change_to_one_stage_changes_no_line_of_any_other_stage(tmp_path):
+    """Stable plans: the budget is split per stage before it is split per check, and shares sit on a 1-2-5
+    ladder, so changing one stage's volume, or rejecting one of its checks, leaves every other stage's metrics
+    byte for byte as they were (hand-off checks sized on that stage's volume aside)."""
+    from conftest import demo_path
+
+    description = yaml.safe_load(demo_path().read_text())
+    source = tmp_path / "pipeline.yaml"
+    out = tmp_path / "plan.yaml"
+    source.write_text(yaml.safe_dump(description, sort_keys=False))
+    propose(str(source), str(out))
+    before_text = out.read_text()
+    before = _metrics(out)
+    assert len(description["stages"]) == 7
+    for stage in description["stages"]:
+        if stage["id"] == "variety_tagger":
+            stage["volume_per_hour"] *= 2
+    source.write_text(yaml.safe_dump(description, sort_keys=False))
+    _edit(out, "variety_tagger.output.confidence", status="rejected", note="confidence is not calibrated yet")
+    propose(str(source), str(out))
+    old, new = _metric_blocks(before_text), _metric_blocks(out.read_text())
+    assert set(old) == set(new)
+    changed = {mid for mid in old if old[mid] != new[mid]}
+    assert changed, "the change must show somewhere"
+    assert all(_touches(before[mid], "variety_tagger") for mid in changed), sorted(
+        mid for mid in changed if not _touches(before[mid], "variety_tagger"))
+    assert any(mid.startswith("variety_tagger.") for mid in changed)

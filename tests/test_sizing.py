@@ -240,3 +240,18 @@ def test_figures_carry_no_false_precision():
                 assert value >= 1e-6 and float(f"{value:.3g}") == value, (metric["id"], key, value)
     assert sizing.shown(2.43e-175) == "< 1e-6" and sizing.shown(0.012345) == 0.0123
     assert "under independent items" in plan["budget"]["noise_model"]
+
+
+def test_budget_shares_sit_on_a_1_2_5_ladder_and_never_sum_past_the_budget():
+    assert [sizing.ladder_down(x) for x in (7, 1, 0.5, 0.0294, 0.0199, 3e-5)] == [5, 1, 0.5, 0.02, 0.01, 2e-5]
+    metrics = [{"id": f"{owner}.input.m{i}", "statistic": "psi", "severity": sev, "critical": 0.2,
+                "warn": 0.1 if i % 2 else None}
+               for owner, count in (("a", 3), ("b", 7), ("pipeline", 1)) for i in range(count)
+               for sev in ("page",)]
+    budget = sizing.make_budget(metrics, 1.0, 5.0, owners=["a", "b", "c", "pipeline"])
+    pages = sum(budget.share(m, "page") for m in metrics)
+    tickets = sum(budget.share(m, "ticket") for m in metrics if m["warn"] is not None)
+    assert pages <= 1.0 and tickets <= 5.0
+    # a stage's share does not depend on another stage's count
+    fewer = sizing.make_budget(metrics[:3] + metrics[4:], 1.0, 5.0, owners=["a", "b", "c", "pipeline"])
+    assert fewer.share(metrics[0], "page") == budget.share(metrics[0], "page")

@@ -208,7 +208,7 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
         kept.add(metric_id)
     # Budget over everything that will alert, then size.
     budget = sizing.make_budget(list(merged.values()), pipeline.false_alarms_per_week,
-                                pipeline.false_tickets_per_week)
+                                pipeline.false_tickets_per_week, owners=[*graph.order, PIPELINE_OWNER])
     for metric_id, metric in merged.items():
         owner = metric_id.split(".", 1)[0]
         known: sizing.Traffic | None = traffic_of.get(metric_id)
@@ -327,7 +327,8 @@ def budget_summary(plan: dict[str, Any]) -> dict[str, Any]:
                        "items that come in bursts, alarm more often: compare with a replay of your own data",
         "false_tickets_per_week": plan["false_tickets_per_week"],
         "expected_false_tickets_per_week": sizing._sig(expected_tickets, 3),
-        "split": "even share of the expected false alarms per week for each check (Bonferroni on the count)",
+        "split": "the budget split evenly over the stages and the whole pipeline, then evenly over each one's checks "
+                 "(Bonferroni on the count), each share rounded down to 1, 2 or 5 times a power of ten",
         "not_counted": "fixed-limit levels and SLO burn-rate alerts, which have no sampling noise to budget",
     }
 

@@ -2,7 +2,8 @@
 
 The check window must be short enough to catch a change at the stage's ``change_rate`` and long enough to hold the
 samples its statistic needs at the stage's volume. The pipeline's false-alarm budget is split evenly over its
-statistical checks (a Bonferroni split of the expected count of false alarms per week); each check's per-evaluation
+stages, then over each stage's statistical checks (a Bonferroni split of the expected count of false alarms per
+week, see :class:`Budget`); each check's per-evaluation
 alpha sets its noise floor, and no suggested threshold sits below that floor.
 """
 
@@ -43,14 +44,31 @@ class Traffic:
     run_every: str | None = None  # a batch stage's period: windows are whole runs
 
 
+def ladder_down(x: float) -> float:
+    """``x`` rounded down to 1, 2 or 5 times a power of ten: a share that moves only when a count moves a lot."""
+    if x <= 0 or not math.isfinite(x):
+        return x
+    power = 10 ** math.floor(math.log10(x))
+    step = max(s for s in (1, 2, 5, 10) if s * power <= x * (1 + 1e-12))
+    return float(f"{step * power:.6g}")
+
+
 @dataclass
 class Budget:
-    """Expected false alarms per week allowed for one page check and for one ticket alert."""
+    """Expected false alarms per week allowed for one page check and for one ticket alert.
+
+    With ``per_owner`` (the plan's way), the budget is split evenly over the groups the description fixes (each
+    stage, and the whole pipeline), then evenly over the checks of each group, and each share is rounded down to
+    1, 2 or 5 times a power of ten. So a change inside one stage (a rejected check, a new volume) moves the shares
+    of that stage only, and a small change moves none; the sum of the shares never exceeds the budget.
+    """
 
     pages_per_week: float
     tickets_per_week: float
     page_checks: int
     ticket_alerts: int
+    groups: int = 1
+    per_owner: dict[str, tuple[int, int]] | None = None  # owner -> (page checks, ticket alerts)
 
     @property
     def page_share(self) -> float:
@@ -60,25 +78,48 @@ class Budget:
     def ticket_share(self) -> float:
         return self.tickets_per_week / max(self.ticket_alerts, 1)
 
+    def share(self, metric: dict[str, Any], kind: str) -> float:
+        """The expected false alarms per week this metric's ``kind`` ("page" or "ticket") alert may spend."""
+        if self.per_owner is None:
+            return self.page_share if kind == "page" else self.ticket_share
+        pages, tickets = self.per_owner.get(owner_of(metric), (0, 0))
+        if kind == "page":
+            return ladder_down(self.pages_per_week / self.groups / max(pages, 1))
+        return ladder_down(self.tickets_per_week / self.groups / max(tickets, 1))
+
+
+def owner_of(metric: dict[str, Any]) -> str:
+    return str(metric["id"]).split(".", 1)[0]
+
 
 def is_statistical(metric: dict[str, Any]) -> bool:
     return metric["statistic"] in stats.STATISTICS
 
 
-def make_budget(metrics: list[dict[str, Any]], pages_per_week: float, tickets_per_week: float) -> Budget:
-    """Count the checks that share each budget: page-severity criticals, and every ticket-level alert."""
+def make_budget(metrics: list[dict[str, Any]], pages_per_week: float, tickets_per_week: float,
+                owners: list[str] | None = None) -> Budget:
+    """Count the checks that share each budget: page-severity criticals, and every ticket-level alert; with
+    ``owners`` (the stage ids and "pipeline"), per owner, for the split by group."""
     page = ticket = 0
+    per_owner: dict[str, list[int]] = {o: [0, 0] for o in owners or []}
     for m in metrics:
         if not is_statistical(m) or m.get("status") in ("rejected", "stale"):
             continue
+        counts = per_owner.setdefault(owner_of(m), [0, 0])
         if m.get("critical") is not None:
             if m["severity"] == "page":
                 page += 1
+                counts[0] += 1
             else:
                 ticket += 1
+                counts[1] += 1
         if m.get("warn") is not None:
             ticket += 1
-    return Budget(pages_per_week, tickets_per_week, page, ticket)
+            counts[1] += 1
+    if owners is None:
+        return Budget(pages_per_week, tickets_per_week, page, ticket)
+    return Budget(pages_per_week, tickets_per_week, page, ticket, groups=len(owners),
+                  per_owner={o: (c[0], c[1]) for o, c in per_owner.items()})
 
 
 def _sig(x: float | None, digits: int = 4) -> float | int | None:
@@ -170,7 +211,7 @@ def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budg
         reference = reference_for(reference, window)
     m = _reference_samples(reference, traffic.per_hour, n)
     evaluations = WEEK / window
-    share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
+    share = budget.share(metric, "page" if metric["severity"] == "page" else "ticket")
     alpha = min(0.5, share / evaluations)
     enough = n >= stat.min_samples()
     critical = metric.get("critical")
@@ -319,7 +360,7 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         critical = raised
     warn_alpha = warn_floor = None
     if warn is not None and chosen.n > 0:
-        warn_alpha = min(0.5, budget.ticket_share / chosen.evaluations)
+        warn_alpha = min(0.5, budget.share(metric, "ticket") / chosen.evaluations)
         warn_floor = stat.floor(chosen.n, chosen.m, warn_alpha)
         if warn < warn_floor and fixed:
             notes.append(f"kept the warn threshold {warn:g} as set, below its noise floor {warn_floor:.3g}")
@@ -353,8 +394,8 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                      f"{REFERENCE_MULTIPLE} windows")
     ref_text = (f"{_fmt(chosen.m)} reference samples ({reference})" if chosen.m is not None
                 else f"a reference taken as exact ({reference})")
-    share = budget.page_share if metric["severity"] == "page" else budget.ticket_share
     kind = "page" if metric["severity"] == "page" else "ticket"
+    share = budget.share(metric, kind)
     derivation = (
         f"{_fmt(traffic.per_hour)} items per hour give {_fmt(chosen.n)} samples per {window_text} window against "
         f"{ref_text}. The {kind} budget allows {share:.3g} false alarms per week for this check, evaluated "
