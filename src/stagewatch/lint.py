@@ -63,9 +63,8 @@ def _located(doc: yamlio.Document) -> Iterator[tuple[tuple[Any, ...], dict[str, 
     for i, stage in enumerate(doc.data["stages"]):
         for j, metric in enumerate(stage.get("metrics", [])):
             yield ("stages", i, "metrics", j), metric, stage["id"]
-    for key in ("pipeline_metrics", "retired_metrics"):
-        for j, metric in enumerate(doc.data.get(key, [])):
-            yield (key, j), metric, "pipeline" if key == "pipeline_metrics" else None
+    for j, metric in enumerate(doc.data.get("pipeline_metrics", [])):
+        yield ("pipeline_metrics", j), metric, "pipeline"
 
 
 def _ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
@@ -81,6 +80,11 @@ def _ordered(warn: float, critical: float, direction: str, statistic: str) -> bo
 def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
     plan = doc.data
     path = doc.path
+    retired = plan.get("retired_metrics") or []
+    if retired:  # kept so that no edit is lost, checked no further: nothing exports or measures them
+        yield Finding(path, doc.line_of(("retired_metrics",)), "retired",
+                      f"{len(retired)} retired metric(s) of stages no longer in the description can be deleted "
+                      "(or give the stage that replaced them `renamed_from` and re-run propose to move them)")
     seen: dict[str, int | None] = {}
     for where, metric, owner in _located(doc):
         line = doc.line_of(where)

@@ -1,6 +1,7 @@
 """The plan: compose it from a pipeline and the catalog, merge it with a plan people already edited, write it.
 
-Reviewer intent lives in fields (``status``, ``note``, thresholds, windows), never in comments. Each generated
+Reviewer intent lives in fields (``status``, ``note``, thresholds, windows); comments are kept too (see
+``comments.py``) but the tool reads no meaning into them. Each generated
 metric carries a ``fingerprint`` of the fields people edit; when a re-run finds the fingerprint unchanged, nobody
 touched the metric and it is refreshed, otherwise the human version wins and only its ``sizing`` is recomputed.
 """
@@ -13,7 +14,7 @@ import json
 from dataclasses import dataclass
 from typing import Any
 
-from stagewatch import durations, fold, sizing, stats, yamlio
+from stagewatch import durations, fold, renames, sizing, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
@@ -170,6 +171,8 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
         fresh[draft["id"]] = draft
         traffic_of[draft["id"]] = traffic
     fresh, folded = fold.fold(fresh)
+    if existing:
+        existing = renames.apply(existing, pipeline, fingerprint)
     old = _existing_metrics(existing) if existing else {}
     merged: dict[str, dict[str, Any]] = {}
     kept: set[str] = set()

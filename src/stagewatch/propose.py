@@ -3,8 +3,10 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
+from stagewatch import comments, renames
 from stagewatch import plan as plan_mod
 from stagewatch import spec, yamlio
 from stagewatch.catalog import load_catalog
@@ -20,6 +22,9 @@ class MergeReport:
     refreshed: list[str] = field(default_factory=list)
     stale: list[str] = field(default_factory=list)
     flagged: list[str] = field(default_factory=list)
+    comments_kept: int = 0
+    comments_moved: list[str] = field(default_factory=list)
+    renamed: dict[str, str] = field(default_factory=dict)
     expected_false_pages: float = 0.0
     budget: float = 1.0
 
@@ -34,6 +39,15 @@ class MergeReport:
         if self.stale:
             out.append(f"  {len(self.stale)} stale (their rule no longer applies): " + ", ".join(self.stale[:5])
                        + (" ..." if len(self.stale) > 5 else ""))
+        if self.renamed:
+            out.append(f"  {len(self.renamed)} renamed after a stage or field rename (renamed_from), edits kept: "
+                       + ", ".join(f"{a} -> {b}" for a, b in list(self.renamed.items())[:5])
+                       + (" ..." if len(self.renamed) > 5 else ""))
+        if self.comments_kept:
+            out.append(f"  {self.comments_kept} reviewer comment(s) kept in place")
+        if self.comments_moved:
+            out.append(f"  warning: {len(self.comments_moved)} comment(s) lost their line (its metric or key is "
+                       "gone) and are kept at the end of the plan")
         if self.flagged:
             out.append(f"  {len(self.flagged)} flagged for review (see 'review:' in the plan)")
         out.append(f"  expected false pages per week from sampling noise alone, under independent items: "
@@ -52,8 +66,10 @@ def _ids(plan: dict[str, Any] | None) -> dict[str, dict[str, Any]]:
     return {m["id"]: m for m in plan_mod.all_metrics(plan) + plan.get("retired_metrics", [])}
 
 
-def report(path: str, before: dict[str, Any] | None, after: dict[str, Any]) -> MergeReport:
+def report(path: str, before: dict[str, Any] | None, after: dict[str, Any],
+           moved: dict[str, str] | None = None) -> MergeReport:
     old, new = _ids(before), _ids(after)
+    old = {(moved or {}).get(k, k): v for k, v in old.items()}  # a renamed stage's metrics are not new
     rep = MergeReport(path=path, metrics=len(plan_mod.all_metrics(after)),
                       expected_false_pages=after["budget"]["expected_false_pages_per_week"] or 0.0,
                       budget=after["false_alarms_per_week"])
@@ -83,11 +99,13 @@ def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None =
     rules = load_catalog(catalog_dir)
     existing = None
     snapshot = None
+    old_text = ""
     if target:
         snapshot = Snapshot.take(target)
         if snapshot.digest is not None:
             existing, doc = plan_mod.load_plan(target)
             snapshot = doc.snapshot()  # the bytes the merge starts from
+            old_text = Path(target).read_text(encoding="utf-8")
     found = None
     if baseline_dir:
         from stagewatch.data.baseline import load_thresholds
@@ -97,6 +115,13 @@ def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None =
     text = plan_mod.dump(composed)
     if not target:
         return text, None
+    moved_ids = renames.metric_ids(existing, pipeline)
+    kept = comments.extract(old_text, plan_mod.HEADER) if old_text else comments.Comments()
+    text, moved = comments.restore(text, kept, moved_ids)
     # Replaced only if nobody changed the plan while it was merged (another propose, an editor's save).
     yamlio.write_atomic(target, text, inputs=[pipeline_path], expected=snapshot)
-    return text, report(target, existing, composed)
+    rep = report(target, existing, composed, moved_ids)
+    rep.comments_kept = comments.count(kept) - len(moved)
+    rep.comments_moved = moved
+    rep.renamed = {a: b for a, b in moved_ids.items() if "." in a}
+    return text, rep

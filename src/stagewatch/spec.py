@@ -32,7 +32,7 @@ def batch_change_rate(run_every: str | None) -> str | None:
     return "months"
 
 
-FIELD_KEYS = ("name", "type", "unknown_value", "range", "categories", "description")
+FIELD_KEYS = ("name", "type", "unknown_value", "range", "categories", "description", "renamed_from")
 
 
 @dataclass
@@ -43,6 +43,7 @@ class FieldSpec:
     range: list[float] | None = None
     categories: list[Any] | None = None
     description: str | None = None
+    renamed_from: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {}
@@ -71,6 +72,7 @@ class Stage:
     run_every: str | None = None
     description: str | None = None
     owner: str | None = None
+    renamed_from: str | None = None  # the stage's earlier id: its reviewed metrics move to this one
     upstream: list[str] = field(default_factory=list)
     inputs: list[FieldSpec] = field(default_factory=list)
     outputs: list[FieldSpec] = field(default_factory=list)
@@ -81,7 +83,7 @@ class Stage:
 
     def to_dict(self) -> dict[str, Any]:
         out: dict[str, Any] = {"id": self.id}
-        for key in ("description", "kind", "modality", "output", "upstream", "serving", "volume_per_hour",
+        for key in ("renamed_from", "description", "kind", "modality", "output", "upstream", "serving", "volume_per_hour",
                     "change_rate", "labels", "label_delay", "labelled_share", "latency_slo_ms", "slo_target",
                     "slo_period", "run_every", "owner"):
             value = getattr(self, key)
@@ -133,7 +135,7 @@ class Pipeline:
 def _field(data: dict[str, Any]) -> FieldSpec:
     return FieldSpec(name=data["name"], type=data["type"], unknown_value=data.get("unknown_value"),
                      range=data.get("range"), categories=data.get("categories"),
-                     description=data.get("description"))
+                     description=data.get("description"), renamed_from=data.get("renamed_from"))
 
 
 def from_document(doc: yamlio.Document) -> Pipeline:
@@ -202,11 +204,18 @@ def from_document(doc: yamlio.Document) -> Pipeline:
                 run_every=raw.get("run_every"),
                 description=raw.get("description"),
                 owner=raw.get("owner"),
+                renamed_from=raw.get("renamed_from"),
                 upstream=list(raw.get("upstream", [])),
                 inputs=[_field(f) for f in raw.get("inputs", [])],
                 outputs=[_field(f) for f in raw.get("outputs", [])],
             )
         )
+    ids = {s.id for s in stages}
+    for index, s in enumerate(stages):
+        if s.renamed_from and s.renamed_from in ids:
+            raise StagewatchError(f"stage '{s.id}': renamed_from '{s.renamed_from}' is still a stage of this pipeline",
+                                  file=doc.path, line=doc.line_of(("stages", index, "renamed_from")),
+                                  expected="the id the stage had before, which no stage has now")
     pipeline = Pipeline(
         name=data["pipeline"],
         stages=stages,
