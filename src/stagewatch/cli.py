@@ -60,7 +60,7 @@ def _render(args: argparse.Namespace) -> int:
         from stagewatch.render_html import render as render_html
 
         render = render_html
-    for path in render(plan, args.output, inputs=[args.plan]):
+    for path in render(plan, args.output, inputs=[args.plan], force=args.force):
         print(f"wrote {path}")
     return EXIT_OK
 
@@ -97,7 +97,7 @@ def _demo(args: argparse.Namespace) -> int:
 def _export(args: argparse.Namespace) -> int:
     from stagewatch.exporters import export
 
-    for line in export(args.plan, args.to, args.output):
+    for line in export(args.plan, args.to, args.output, force=args.force):
         print(line)
     return EXIT_OK
 
@@ -140,6 +140,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="directory to write into (-: standard output)")
     p.add_argument("--format", choices=("markdown", "html"), default="markdown",
                    help="markdown (default, plan.md) or html (plan.html)")
+    p.add_argument("--force", action="store_true",
+                   help="write over a file edited by hand since it was rendered (the edited one is kept as .bak)")
     p.set_defaults(func=_render)
 
     p = sub.add_parser("explain", help="show how one metric's window and thresholds were derived")
@@ -154,6 +156,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("plan", metavar="PLAN.yaml")
     p.add_argument("--to", required=True, choices=("prometheus", "checks"))
     p.add_argument("-o", "--output", required=True, metavar="DIR_OR_FILE")
+    p.add_argument("--force", action="store_true",
+                   help="write over files edited by hand since the last export (each edited one is kept as .bak)")
     p.set_defaults(func=_export)
 
     p = sub.add_parser("demo", help="run the whole flow on the bundled packhouse demo",

@@ -16,7 +16,8 @@ from stagewatch.escape import markdown_cell, markdown_code, markdown_text, merma
 from stagewatch.names import mermaid_id
 from stagewatch.plan import all_metrics
 from stagewatch.resources import data_dir
-from stagewatch.safewrite import STDOUT, resolve_target, safe_write
+from stagewatch.owned import write_owned
+from stagewatch.safewrite import STDOUT, safe_write
 
 LAYERS = ("software", "input", "output")
 STATISTIC_NAMES = {
@@ -89,13 +90,14 @@ def render_markdown(plan: dict[str, Any]) -> str:
     return environment().get_template("plan.md.j2").render(**context(plan))
 
 
-def render(plan: dict[str, Any], out_dir: str | Path, inputs: Sequence[str | Path] = ()) -> list[Path]:
+def render(plan: dict[str, Any], out_dir: str | Path, inputs: Sequence[str | Path] = (),
+           force: bool = False) -> list[Path]:
     """Write the review documents for ``plan`` into ``out_dir`` (``-``: standard output); returns the files
-    written. A file among ``inputs`` (the plan read) is never written over."""
+    written. A file among ``inputs`` (the plan read) is never written over, nor one edited by hand (see
+    ``owned.py``) unless ``force``."""
     if str(out_dir) == STDOUT:
         safe_write(STDOUT, render_markdown(plan))
         return []
     target = Path(out_dir) / "plan.md"
-    resolve_target(target, inputs)
-    safe_write(target, render_markdown(plan), inputs=inputs)
+    write_owned(out_dir, {target: render_markdown(plan)}, kind="render-markdown", inputs=inputs, force=force)
     return [target]

@@ -18,7 +18,8 @@ import jinja2
 from stagewatch import diagram
 from stagewatch.escape import visible
 from stagewatch.resources import data_dir
-from stagewatch.safewrite import STDOUT, resolve_target, safe_write
+from stagewatch.owned import write_owned
+from stagewatch.safewrite import STDOUT, safe_write
 
 PALETTE = {
     "ink": "#1a1a1a", "muted": "#4a4a4a", "paper": "#ffffff", "panel": "#f4f6f8", "line": "#767676",
@@ -86,13 +87,14 @@ def render_plan_html(plan: dict[str, Any]) -> str:
     return page("plan.html.j2", diagram=diagram.build(plan), sides=diagram.handoff_sides(plan), **ctx)
 
 
-def render(plan: dict[str, Any], out_dir: str | Path, inputs: Sequence[str | Path] = ()) -> list[Path]:
-    """Write ``out_dir/plan.html`` (``-``: standard output); returns the files written."""
+def render(plan: dict[str, Any], out_dir: str | Path, inputs: Sequence[str | Path] = (),
+           force: bool = False) -> list[Path]:
+    """Write ``out_dir/plan.html`` (``-``: standard output); returns the files written. A file edited by hand is
+    not written over unless ``force`` (see ``owned.py``)."""
     text = render_plan_html(plan)
     if str(out_dir) == STDOUT:
         safe_write(STDOUT, text)
         return []
     target = Path(out_dir) / "plan.html"
-    resolve_target(target, inputs)
-    safe_write(target, text, inputs=inputs)
+    write_owned(out_dir, {target: text}, kind="render-html", inputs=inputs, force=force)
     return [target]

@@ -12,21 +12,23 @@ from stagewatch.plan import all_metrics, load_plan
 
 
 class Exporter(Protocol):
-    """Writes ``plan`` to ``target`` through :mod:`stagewatch.safewrite`, never over a file in ``inputs``."""
+    """Writes ``plan`` to ``target`` through :mod:`stagewatch.safewrite`, never over a file in ``inputs``; a
+    directory of files is owned through :mod:`stagewatch.owned` (``force``: write over hand edits, keeping .bak)."""
 
-    def __call__(self, plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]: ...
+    def __call__(self, plan: dict[str, Any], target: str, inputs: Sequence[str] = (),
+                 force: bool = False) -> list[str]: ...
 
 
-def _prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
+def _prometheus(plan: dict[str, Any], target: str, inputs: Sequence[str] = (), force: bool = False) -> list[str]:
     from stagewatch.exporters.prometheus import export_prometheus
 
-    return export_prometheus(plan, target, inputs)
+    return export_prometheus(plan, target, inputs, force=force)
 
 
-def _checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
+def _checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = (), force: bool = False) -> list[str]:
     from stagewatch.exporters.checks import export_checks
 
-    return export_checks(plan, target, inputs)
+    return export_checks(plan, target, inputs, force=force)
 
 
 EXPORTERS: dict[str, Exporter] = {
@@ -40,6 +42,6 @@ def live_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
     return [m for m in all_metrics(plan) if m["status"] in ("accepted", "proposed")]
 
 
-def export(plan_path: str, to: str, target: str) -> list[str]:
+def export(plan_path: str, to: str, target: str, force: bool = False) -> list[str]:
     plan, _ = load_plan(plan_path)
-    return EXPORTERS[to](plan, target, [plan_path])
+    return EXPORTERS[to](plan, target, [plan_path], force=force)

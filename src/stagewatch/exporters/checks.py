@@ -32,8 +32,9 @@ def checks_document(plan: dict[str, Any]) -> dict[str, Any]:
     return {"checks_version": CHECKS_VERSION, "pipeline": plan["pipeline"], "checks": checks}
 
 
-def export_checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = ()) -> list[str]:
-    """Write the check configuration to ``target`` (``-``: standard output)."""
+def export_checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = (), force: bool = False) -> list[str]:
+    """Write the check configuration to ``target`` (``-``: standard output): one file, named by the user, so
+    there is no directory of generated files to keep (``force`` is accepted for a uniform call)."""
     document = checks_document(plan)
     try:
         validator("checks").validate(document)
