@@ -120,3 +120,41 @@ def test_a_renamed_field_takes_its_checks_along(tmp_path):
     drift = metrics["load_cell.input.mass_g_drift"]
     assert drift["critical"] == 0.3 and drift["reads"]["column"] == "mass_g"
     assert not any("weight_g" in mid for mid in metrics)
+
+
+def test_a_reviewers_round_trip_shows_a_diff_limited_to_what_changed(tmp_path):
+    """Edit, comment, rename a stage, change a volume, re-propose, re-export: every edit and comment is kept and
+    only the metrics of the two stages touched (and the hand-off checks on their edges) differ."""
+    from stagewatch.cli import main
+    from test_plan import _metric_blocks
+
+    source, out = _setup(tmp_path)
+    export = tmp_path / "export"
+    text = _comment(out.read_text(), "  - id: grade_assigner.output.quality\n", "# QA reviews this weekly")
+    i = text.index("  - id: load_cell.input.level_shift")
+    j = text.index("    critical:", i)
+    k = text.index("\n", j)
+    text = text[:j] + "    critical: 0.8  # the scale drifts a little every morning" + text[k:]
+    out.write_text(text)
+    assert main(["export", str(out), "--to", "prometheus", "-o", str(export)]) == 0
+    before = _metric_blocks(out.read_text())
+    description = source.read_text().replace("  - id: frame_gate\n", "  - id: crop_gate\n    renamed_from: frame_gate\n")
+    description = description.replace("upstream: [frame_gate]", "upstream: [crop_gate]")
+    tagger = "    volume_per_hour: 2000\n    labels: delayed\n    label_delay: 2d\n"
+    assert tagger in description
+    source.write_text(description.replace(tagger, tagger.replace("2000", "3000")))  # variety_tagger
+    propose(str(source), str(out))
+    after_text = out.read_text()
+    after = _metric_blocks(after_text)
+    assert "# QA reviews this weekly\n  - id: grade_assigner.output.quality" in after_text
+    assert "    critical: 0.8  # the scale drifts a little every morning" in after_text
+    # what the reviewer touched: the renamed stage, the stage whose volume changed, the metric edited, and every
+    # check that names one of those stages (hand-off checks and the checks they are folded into)
+    touched = ("frame_gate", "crop_gate", "variety_tagger")
+    same = [mid for mid, block in before.items() if not any(t in block for t in touched)
+            and mid != "load_cell.input.level_shift"]
+    assert same and all(before[mid] == after[mid] for mid in same), [m for m in same if before[m] != after[m]]
+    assert lint_file(str(out)) == []
+    assert main(["export", str(out), "--to", "prometheus", "-o", str(export)]) == 0
+    assert not (export / "rules" / "frame_gate.rules.yml").exists()
+    assert (export / "rules" / "crop_gate.rules.yml").exists()
