@@ -28,6 +28,23 @@ def test_version(capsys):
     assert capsys.readouterr().out.strip() == f"stagewatch {__version__}"
 
 
+HEAVY = ("scipy", "numpy", "networkx")
+
+
+@pytest.mark.parametrize("option", ["--version", "--help"])
+def test_version_and_help_import_no_heavy_module(option):
+    """Python's own import log (-X importtime) of a real process: start-up must not pay for the statistics."""
+    import sys
+
+    done = subprocess.run([sys.executable, "-X", "importtime", "-m", "stagewatch", option], capture_output=True,
+                          text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    imported = {line.split("|")[-1].strip() for line in done.stderr.splitlines() if line.startswith("import time:")}
+    assert "stagewatch.cli" in imported  # the log is there and names our modules
+    assert not {m for m in imported if m.split(".")[0] in HEAVY}, sorted(
+        m for m in imported if m.split(".")[0] in HEAVY)
+
+
 def test_bad_usage_exits_2(capsys):
     with pytest.raises(SystemExit) as info:
         main(["propose"])

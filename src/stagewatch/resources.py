@@ -9,7 +9,7 @@ from __future__ import annotations
 import json
 from functools import lru_cache
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 _PACKAGE = Path(__file__).resolve().parent
 
@@ -52,8 +52,20 @@ def format_checker() -> Any:
 
 
 @lru_cache(maxsize=None)
+def compiled(kind: str) -> Callable[[Any], Any]:
+    """The compiled validator for ``kind`` (fastjsonschema): it says whether a document is valid, some 20 times
+    faster than the interpreted one. Defaults in the schema are not filled in: a check must not change the data.
+    It raises ``fastjsonschema.JsonSchemaValueException`` on the first violation; :func:`validator` then words
+    the error."""
+    import fastjsonschema
+
+    return fastjsonschema.compile(schema(kind), formats={"bounded-duration": _bounded_duration}, use_default=False)
+
+
+@lru_cache(maxsize=None)
 def validator(kind: str) -> Any:
-    """A validator for ``kind`` that resolves references between our schemas without any network."""
+    """The interpreted validator for ``kind`` (jsonschema), which resolves references between our schemas without
+    any network. Used to word a violation the compiled validator found: every error, the best match, its path."""
     import jsonschema
     from referencing import Registry, Resource
 
