@@ -179,6 +179,14 @@ def safe_write(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str 
         sys.stdout.write(text)
         sys.stdout.flush()
         return None
+    real = _write(path, text, inputs, expected)
+    _sync_directories([real.parent])
+    return real
+
+
+def _write(path: str | os.PathLike[str], text: str, inputs: Iterable[str | os.PathLike[str]],
+           expected: Snapshot | None) -> Path:
+    """The atomic replace of one file, without the directory sync (the caller does it once per directory)."""
     shown = str(path)
     real = resolve_target(path, inputs)
     try:
@@ -193,6 +201,21 @@ def safe_write(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str 
         stack.enter_context(_signals_raise())
         _replace(real, shown, data)
     return real
+
+
+def _sync_directories(directories: Iterable[Path]) -> None:
+    """One fsync per directory after the renames into it: the new names (and, on journalling file systems, the
+    data the renames committed) reach the disk together, instead of one fsync per file before its rename."""
+    for directory in dict.fromkeys(directories):
+        try:
+            fd = os.open(directory, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+        except OSError:  # a directory that cannot be opened for reading cannot be synced either
+            continue
+        try:
+            with contextlib.suppress(OSError):  # some file systems refuse fsync on a directory
+                os.fsync(fd)
+        finally:
+            os.close(fd)
 
 
 STALE_TEMP_S = 3600.0  # a temporary file this old was left by a write killed with SIGKILL
@@ -218,8 +241,6 @@ def _replace(real: Path, shown: str, data: bytes) -> None:
         try:
             with os.fdopen(fd, "wb") as handle:
                 handle.write(data)
-                handle.flush()
-                os.fsync(handle.fileno())
             try:
                 mode = os.stat(real).st_mode & 0o777
             except FileNotFoundError:
@@ -243,5 +264,5 @@ def safe_write_all(files: dict[Path, str], *, inputs: Iterable[str | os.PathLike
     if len(set(targets)) != len(targets):  # two outputs through symlinks onto one file
         raise StagewatchError("two of the files to write are the same file (through a symbolic link)",
                               file=str(next(iter(files))).rsplit("/", 1)[0])
-    for path, text in files.items():
-        safe_write(path, text, inputs=sources)
+    written = [_write(path, text, sources, None) for path, text in files.items()]
+    _sync_directories(real.parent for real in written)
