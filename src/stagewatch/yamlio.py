@@ -269,7 +269,26 @@ def validate(doc: Document, kind: str) -> None:
 
 
 class _Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]
-    pass
+    """libyaml's emitter with PyYAML's safe representer. The emitter asks the resolver, for every scalar, whether
+    its text would read back as another type (and so needs quotes); generated files repeat the same texts
+    thousands of times, so the answers are kept per text. The rules are PyYAML's own, so the output is the same."""
+
+    _resolved: dict[tuple[str, tuple[bool, bool]], str] = {}
+
+    def resolve(self, kind: type, value: Any, implicit: Any) -> Any:
+        if kind is not yaml.ScalarNode:
+            return super().resolve(kind, value, implicit)
+        key = (value, implicit)
+        tag = self._resolved.get(key)
+        if tag is None:
+            tag = self._resolved[key] = super().resolve(kind, value, implicit)
+        return tag
+
+    def represent_data(self, data: Any) -> yaml.Node:
+        if type(data) is str:  # never an alias: straight to the one representer for text
+            self.alias_key = None  # as the base class does for text, or the node would be kept as an alias target
+            return _str_presenter(self, data)
+        return super().represent_data(data)
 
 
 def _str_presenter(dumper: yaml.SafeDumper, value: str) -> yaml.Node:

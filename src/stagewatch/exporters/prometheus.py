@@ -160,9 +160,39 @@ def _annotations(metric: dict[str, Any], level: str, threshold: float) -> dict[s
 
 
 def _series_lines(series: Series) -> list[dict[str, str]]:
-    def fmt(v: float | None) -> str:
-        return "_" if v is None else _fmt(round(v, 9))
-    return [{"series": key, "values": " ".join(fmt(v) for v in values)} for key, values in series.values.items()]
+    return [{"series": key, "values": _compact(values)} for key, values in series.values.items()]
+
+
+def _compact(values: Sequence[float | None]) -> str:
+    """Sample values in promtool's expanding notation: a run that promtool's ``a+bxn`` rebuilds (it starts at
+    ``a`` and adds ``b`` n times, in float64) within the precision the values are written with (1e-9, relative
+    above 1) is written as one term, so a steady counter or gauge costs a few characters instead of one number
+    per step. Missing samples stay ``_``."""
+    texts = ["_" if v is None else _fmt(round(v, 9)) for v in values]
+    terms: list[str] = []
+    i = 0
+    while i < len(values):
+        first, second = values[i], values[i + 1] if i + 1 < len(values) else None
+        if first is None or second is None or i + 2 >= len(values):
+            terms.append(texts[i])
+            i += 1
+            continue
+        step_text = _fmt(round(abs(second - first), 9))
+        increment = float(step_text) if second >= first else -float(step_text)
+        end, value = i, float(texts[i])
+        while end + 1 < len(values):
+            target = values[end + 1]
+            if target is None or abs(value + increment - target) > 1e-9 * max(1.0, abs(target)):
+                break
+            value += increment
+            end += 1
+        if end - i < 2:  # two values: as short written out
+            terms.append(texts[i])
+            i += 1
+            continue
+        terms.append(f"{texts[i]}{'-' if second < first else '+'}{step_text}x{end - i}")
+        i = end + 1
+    return " ".join(terms)
 
 
 def _step(window: str) -> int:
