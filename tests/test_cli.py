@@ -105,6 +105,24 @@ def test_installed_package_carries_its_catalog_and_templates():
             assert found.parent == package
 
 
+def test_installed_package_ships_validators_compiled_from_its_schemas():
+    """The wheel carries the schemas compiled at build time (hatch_build.py), and they are the ones in use."""
+    import hashlib
+    import importlib
+
+    import stagewatch
+    from stagewatch.resources import SCHEMA_KINDS, compiled
+
+    package = __import__("pathlib").Path(stagewatch.__file__).parent
+    if "site-packages" not in str(package):
+        pytest.skip("a source checkout compiles the schemas when first used")
+    for kind in SCHEMA_KINDS:
+        shipped = importlib.import_module(f"stagewatch.compiled_schemas.{kind.replace('-', '_')}")
+        raw = (package / "schemas" / f"{kind}.schema.json").read_bytes()
+        assert shipped.SCHEMA_SHA256 == hashlib.sha256(raw).hexdigest()
+        assert compiled(kind).func is shipped.validate
+
+
 def test_the_readme_example_goes_through_propose_lint_render(tmp_path):
     # The README's pipeline description, as a new user would copy it.
     from pathlib import Path
