@@ -168,29 +168,33 @@ def _compact(values: Sequence[float | None]) -> str:
     ``a`` and adds ``b`` n times, in float64) within the precision the values are written with (1e-9, relative
     above 1) is written as one term, so a steady counter or gauge costs a few characters instead of one number
     per step. Missing samples stay ``_``."""
-    texts = ["_" if v is None else _fmt(round(v, 9)) for v in values]
+    def text(v: float | None) -> str:
+        return "_" if v is None else _fmt(round(v, 9))
+
     terms: list[str] = []
-    i = 0
-    while i < len(values):
-        first, second = values[i], values[i + 1] if i + 1 < len(values) else None
-        if first is None or second is None or i + 2 >= len(values):
-            terms.append(texts[i])
+    i, count = 0, len(values)
+    while i < count:
+        first = values[i]
+        second = values[i + 1] if i + 2 < count else None
+        if first is None or second is None:
+            terms.append(text(first))
             i += 1
             continue
+        head = text(first)
         step_text = _fmt(round(abs(second - first), 9))
         increment = float(step_text) if second >= first else -float(step_text)
-        end, value = i, float(texts[i])
-        while end + 1 < len(values):
+        end, value = i, float(head)
+        while end + 1 < count:
             target = values[end + 1]
             if target is None or abs(value + increment - target) > 1e-9 * max(1.0, abs(target)):
                 break
             value += increment
             end += 1
         if end - i < 2:  # two values: as short written out
-            terms.append(texts[i])
+            terms.append(head)
             i += 1
             continue
-        terms.append(f"{texts[i]}{'-' if second < first else '+'}{step_text}x{end - i}")
+        terms.append(f"{head}{'-' if second < first else '+'}{step_text}x{end - i}")
         i = end + 1
     return " ".join(terms)
 
