@@ -48,10 +48,12 @@ LINEAGE_LABEL = "lineage"
 
 @dataclass
 class Lineage:
-    """Where every stage sits in a cover of the graph by chains (paths along its edges), and what lies above it.
+    """Where every stage sits in a cover of the graph by chains (stages each upstream of the next), and what lies
+    above it.
 
-    Stages are taken in topological order; a stage continues the chain of its first upstream stage that still
-    ends a chain, or starts a new one. On a chain, the stages above a given stage are a prefix, so what lies above
+    Stages are taken in topological order; a stage continues the first chain whose last stage lies upstream of
+    it, or starts a new one, so there are about as many chains as stages side by side; stages with nothing below
+    (most often the last ones) hold nothing back and take no place on a chain. On a chain, the stages above a given stage are a prefix, so what lies above
     a stage is, per chain, the last position above it: ``above["d"] == {0: 4, 2: 1}`` says that positions 0-4 of
     chain 0 and 0-1 of chain 2 are the stages upstream of ``d``. Stage ``x`` at position ``i`` of chain ``c`` is
     upstream of ``d`` exactly when ``above[d][c] >= i``. Alerts carry ``above`` as the label ``lineage`` (``0:4,2:1``)
@@ -69,26 +71,24 @@ class Lineage:
         order = {s["id"]: i for i, s in enumerate(plan["stages"])}
         position: dict[str, tuple[int, int]] = {}
         above: dict[str, dict[int, int]] = {}
-        tails: set[str] = set()  # stages that end their chain
-        chains = 0
+        lengths: list[int] = []  # stages on each chain so far
         for stage in nx.lexicographical_topological_sort(graph, key=order.__getitem__):
-            parents = sorted(graph.predecessors(stage), key=order.__getitem__)
             merged: dict[int, int] = {}
-            for parent in parents:
+            for parent in graph.predecessors(stage):
                 for chain, last in above[parent].items():
                     merged[chain] = max(merged.get(chain, -1), last)
                 chain, at = position[parent]
                 merged[chain] = max(merged.get(chain, -1), at)
-            extend = next((p for p in parents if p in tails), None)
-            if extend is None:
-                position[stage] = (chains, 0)
-                chains += 1
-            else:
-                tails.discard(extend)
-                chain, at = position[extend]
-                position[stage] = (chain, at + 1)
-            tails.add(stage)
             above[stage] = dict(sorted(merged.items()))
+            if not graph.out_degree(stage):  # nothing below: it never holds anything back, so needs no place
+                continue
+            # Continue the first chain whose last stage lies upstream (then the chain stays ordered by reach).
+            extend = next((c for c in sorted(merged) if merged[c] == lengths[c] - 1), None)
+            if extend is None:
+                extend = len(lengths)
+                lengths.append(0)
+            position[stage] = (extend, lengths[extend])
+            lengths[extend] += 1
         return cls(position, above)
 
     def label(self, stage: str) -> str | None:
@@ -96,8 +96,11 @@ class Lineage:
         above = self.above.get(stage)
         return ",".join(f"{chain}:{last}" for chain, last in above.items()) if above else None
 
-    def below_pattern(self, stage: str) -> str:
-        """A regular expression (anchored, as Alertmanager's are) matching the lineage of every stage below."""
+    def below_pattern(self, stage: str) -> str | None:
+        """A regular expression (anchored, as Alertmanager's are) matching the lineage of every stage below; None
+        for a stage with nothing below."""
+        if stage not in self.position:
+            return None
         chain, at = self.position[stage]
         return f"(.*,)?{chain}:({at_least(at)})(,.*)?"
 
@@ -124,7 +127,8 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str], lineage: Lineag
         "equal": ["alertname", "pipeline", "stage"],
     }]
     for stage in plan["stages"]:
-        if not graph.out_degree(stage["id"]):
+        pattern = lineage.below_pattern(stage["id"])
+        if pattern is None:
             continue
         # Only a critical input or output alert upstream that moves with the data explains drift below; a software
         # alert (a model's age) holds back nothing, and contract, quality and software alerts below are never
@@ -134,7 +138,7 @@ def alertmanager_config(plan: dict[str, Any], owners: list[str], lineage: Lineag
             "source_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
                                 'level="critical"', 'explains="true"'],
             "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', 'drift="true"',
-                                f'{LINEAGE_LABEL}=~"{lineage.below_pattern(stage["id"])}"'],
+                                f'{LINEAGE_LABEL}=~"{pattern}"'],
             "equal": ["pipeline"],
         })
     receivers = [{"name": "stagewatch-default",
