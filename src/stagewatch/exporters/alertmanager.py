@@ -119,7 +119,6 @@ def at_least(number: int) -> str:
 
 def alertmanager_config(plan: dict[str, Any], owners: list[str], lineage: Lineage | None = None) -> dict[str, Any]:
     pipeline = plan["pipeline"]
-    graph = plan_graph(plan)
     lineage = lineage or Lineage.of(plan)
     inhibit = [{
         # A critical alert hides the warn alert of the same check.
