@@ -1,32 +1,41 @@
-"""Benchmark: propose + lint + render (Markdown, then the HTML page) for generated pipelines of 10, 100 and 1,000 stages.
+"""Benchmark: every planning command as users pay for it, one process per command, start-up included.
 
-Prints seconds per step and per (stage + edge), so that growth with pipeline size can be read off. Not a test.
-Run with `make bench` (or `python benchmarks/bench_plan.py [SIZES...]`).
+For the bundled demo and for generated pipelines (default 1,000 stages) it times, each as a separate
+`stagewatch` process: propose (a new plan), propose again (the re-propose of an existing plan), lint, render,
+explain, export --to prometheus and export --to checks; and `stagewatch --version` and `--help`. Beside each
+figure it prints the ratio to the plan's floor: a process that only loads the plan with PyYAML's C loader and
+dumps it again with the C dumper (what any tool that reads and writes that plan pays). It ends with the size of
+`alertmanager.yml` for chains of 1,000 and 2,000 stages, which must grow linearly. Not a test: it prints figures.
+
+Run with `make bench`, or `python benchmarks/bench_plan.py [--runs N] [demo] [SIZES...]`; each figure is the
+median of N runs (default: 3 for the demo and `--version`/`--help`, 1 for a generated pipeline, whose commands
+take tens of seconds each).
 """
 
 from __future__ import annotations
 
 import random
+import shutil
+import statistics
+import subprocess
 import sys
 import tempfile
 import time
-import tracemalloc
 from pathlib import Path
 
 import yaml
-
-from stagewatch import yamlio
-from stagewatch.catalog import load_catalog
-from stagewatch.lint import lint_file
-from stagewatch.plan import compose, dump, load_plan
-from stagewatch.render import render
-from stagewatch.render_html import render as render_html
-from stagewatch.spec import load_pipeline
 
 KINDS = ["learned", "rule-based"]
 MODALITIES = ["image", "text", "tabular", "events", "timeseries", "audio", "video"]
 OUTPUTS = ["gate", "segments", "class", "attribute", "score", "value", "ranking", "text", "records"]
 SERVING = ["online", "batch", "device"]
+BIN = Path(sys.executable).parent
+STAGEWATCH = str(BIN / "stagewatch")
+FLOOR = ("import sys, yaml\n"
+         "with open(sys.argv[1], encoding='utf-8') as f:\n"
+         "    data = yaml.load(f.read(), Loader=yaml.CSafeLoader)\n"
+         "text = yaml.dump(data, Dumper=yaml.CSafeDumper, sort_keys=False, default_flow_style=False, width=110,\n"
+         "                 allow_unicode=True)\n")
 
 
 def generate(stages: int, seed: int = 1) -> dict:
@@ -53,48 +62,99 @@ def generate(stages: int, seed: int = 1) -> dict:
     return {"pipeline": f"bench-{stages}", "context": "business", "stages": out}
 
 
-def run(stages: int, workdir: Path, memory: bool = False) -> dict:
-    description = generate(stages)
-    edges = sum(len(s.get("upstream", [])) for s in description["stages"])
-    source = workdir / f"p{stages}.yaml"
-    source.write_text(yaml.safe_dump(description, sort_keys=False))
-    rules = load_catalog()
-    if memory:
-        tracemalloc.start()
-    t0 = time.perf_counter()
-    plan = compose(load_pipeline(str(source)), rules)
-    plan_path = workdir / f"plan{stages}.yaml"
-    yamlio.write_atomic(plan_path, dump(plan))
-    t1 = time.perf_counter()
-    findings = lint_file(str(plan_path))
-    t2 = time.perf_counter()
-    loaded, _ = load_plan(str(plan_path))
-    render(loaded, workdir / f"out{stages}")
-    t3 = time.perf_counter()
-    render_html(loaded, workdir / f"out{stages}")
-    t4 = time.perf_counter()
-    peak = tracemalloc.get_traced_memory()[1] if memory else 0
-    if memory:
-        tracemalloc.stop()
-    metrics = sum(len(s["metrics"]) for s in plan["stages"])
-    return {"stages": stages, "edges": edges, "metrics": metrics, "propose_s": t1 - t0, "lint_s": t2 - t1,
-            "render_s": t3 - t2, "html_s": t4 - t3, "total_s": t3 - t0, "peak_mib": peak / 2**20, "findings": len(findings)}
+def chain(stages: int) -> dict:
+    """A plan skeleton for a chain of stages: what the Alertmanager configuration is built from."""
+    return {"pipeline": f"chain-{stages}", "stages": [
+        {"id": f"c{i:05d}", "upstream": [f"c{i - 1:05d}"] if i else [], "metrics": []} for i in range(stages)]}
+
+
+def timed(argv: list[str], runs: int, setup: list[str] | None = None) -> float:
+    """Median wall seconds of ``argv`` as a separate process (``setup`` runs untimed before each run)."""
+    times = []
+    for _ in range(runs):
+        if setup:
+            subprocess.run(setup, check=True, stdout=subprocess.DEVNULL)
+        t0 = time.perf_counter()
+        done = subprocess.run(argv, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+        times.append(time.perf_counter() - t0)
+        if done.returncode not in (0, 1):  # 1: lint findings
+            raise SystemExit(f"{' '.join(argv)} failed ({done.returncode}): {done.stderr.decode()[-2000:]}")
+    return statistics.median(times)
+
+
+def first_metric(plan_path: Path) -> str:
+    plan = yaml.load(plan_path.read_text(encoding="utf-8"), Loader=yaml.CSafeLoader)
+    return next(m["id"] for s in plan["stages"] for m in s.get("metrics", []))
+
+
+def bench(name: str, description: Path, work: Path, runs: int) -> list[tuple[str, float, float]]:
+    plan = work / f"{name}.plan.yaml"
+    first = [STAGEWATCH, "propose", str(description), "-o", str(plan)]
+    remove = [sys.executable, "-c", f"import os; os.path.exists({str(plan)!r}) and os.remove({str(plan)!r})"]
+    rows = [("propose (new plan)", timed(first, runs, setup=remove))]
+    rows.append(("propose (re-propose)", timed(first, runs)))
+    floor = timed([sys.executable, "-c", FLOOR, str(plan)], runs)
+    rows.append(("lint", timed([STAGEWATCH, "lint", str(plan)], runs)))
+    rows.append(("render", timed([STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.render")], runs)))
+    rows.append(("render --format html", timed([STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.html"),
+                                                "--format", "html"], runs)))
+    rows.append(("explain", timed([STAGEWATCH, "explain", str(plan), first_metric(plan)], runs)))
+    rows.append(("export --to prometheus", timed([STAGEWATCH, "export", str(plan), "--to", "prometheus", "-o",
+                                                  str(work / f"{name}.prom")], runs)))
+    rows.append(("export --to checks", timed([STAGEWATCH, "export", str(plan), "--to", "checks", "-o",
+                                              str(work / f"{name}.checks.json")], runs)))
+    size = plan.stat().st_size / 2**20
+    return [(f"floor: load + dump of the plan ({size:.1f} MiB)", floor, 1.0)] + [
+        (step, seconds, seconds / floor) for step, seconds in rows]
+
+
+def chain_sizes(sizes: tuple[int, ...] = (1000, 2000)) -> list[tuple[int, int]]:
+    from stagewatch import yamlio
+    from stagewatch.exporters.alertmanager import AM_HEADER, alertmanager_config
+
+    return [(n, len((AM_HEADER + yamlio.dump(alertmanager_config(chain(n), []))).encode())) for n in sizes]
 
 
 def main(argv: list[str]) -> None:
-    memory = "--memory" in argv  # tracemalloc slows Python code several times: times are then not comparable
-    sizes = [int(a) for a in argv if a != "--memory"] or [10, 100, 1000]
-    print(f"{'stages':>7} {'edges':>6} {'metrics':>8} {'propose s':>10} {'lint s':>8} {'render s':>9} "
-          f"{'total s':>8} {'ms/(stage+edge)':>16} {'peak MiB':>9} {'html s':>7}")
+    runs: int | None = None
+    if "--runs" in argv:
+        at = argv.index("--runs")
+        runs = int(argv[at + 1])
+        argv = argv[:at] + argv[at + 2:]
+    targets = argv or ["demo", "1000"]
     with tempfile.TemporaryDirectory() as tmp:
-        for size in sizes:
-            r = run(size, Path(tmp), memory)
-            per = 1000 * r["total_s"] / (r["stages"] + r["edges"])
-            peak = f"{r['peak_mib']:.1f}" if memory else "-"
-            print(f"{r['stages']:>7} {r['edges']:>6} {r['metrics']:>8} {r['propose_s']:>10.2f} {r['lint_s']:>8.2f} "
-                  f"{r['render_s']:>9.2f} {r['total_s']:>8.2f} {per:>16.2f} {peak:>9} {r['html_s']:>7.2f}")
-            if r["findings"]:
-                print(f"        (lint found {r['findings']} finding(s) in the generated plan)")
+        work = Path(tmp)
+        print("each figure: median wall seconds, one process per command, start-up included")
+        quick = max(runs or 3, 5)
+        start_up = [("stagewatch --version", timed([STAGEWATCH, "--version"], quick)),
+                    ("stagewatch --help", timed([STAGEWATCH, "--help"], quick)),
+                    ("bare interpreter", timed([sys.executable, "-c", "pass"], quick))]
+        for step, seconds in start_up:
+            print(f"  {step:<48} {seconds:>8.3f} s")
+        for target in targets:
+            if target == "demo":
+                from stagewatch.demo import DEMO
+
+                description = work / "demo.yaml"
+                shutil.copyfile(DEMO, description)
+                title = f"demo ({DEMO.name})"
+            else:
+                size = int(target)
+                pipeline = generate(size)
+                edges = sum(len(s.get("upstream", [])) for s in pipeline["stages"])
+                description = work / f"p{size}.yaml"
+                description.write_text(yaml.safe_dump(pipeline, sort_keys=False))
+                title = f"generated, {size:,} stages, {edges:,} edges"
+            count = runs or (3 if target == "demo" else 1)
+            print(f"\n{title}, median of {count} run(s):")
+            print(f"  {'step':<48} {'seconds':>10} {'x floor':>8}")
+            for step, seconds, ratio in bench(target, description, work, count):
+                print(f"  {step:<48} {seconds:>10.3f} {ratio:>8.2f}")
+        print("\nalertmanager.yml for a chain of stages:")
+        sizes = chain_sizes()
+        for n, size in sizes:
+            print(f"  {n:>6,} stages  {size:>12,} bytes")
+        print(f"  ratio {sizes[-1][0] // sizes[0][0]}x stages: {sizes[-1][1] / sizes[0][1]:.2f}x bytes")
 
 
 if __name__ == "__main__":

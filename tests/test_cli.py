@@ -28,6 +28,23 @@ def test_version(capsys):
     assert capsys.readouterr().out.strip() == f"stagewatch {__version__}"
 
 
+HEAVY = ("scipy", "numpy", "networkx")
+
+
+@pytest.mark.parametrize("option", ["--version", "--help"])
+def test_version_and_help_import_no_heavy_module(option):
+    """Python's own import log (-X importtime) of a real process: start-up must not pay for the statistics."""
+    import sys
+
+    done = subprocess.run([sys.executable, "-X", "importtime", "-m", "stagewatch", option], capture_output=True,
+                          text=True, timeout=120)
+    assert done.returncode == 0, done.stderr
+    imported = {line.split("|")[-1].strip() for line in done.stderr.splitlines() if line.startswith("import time:")}
+    assert "stagewatch.cli" in imported  # the log is there and names our modules
+    assert not {m for m in imported if m.split(".")[0] in HEAVY}, sorted(
+        m for m in imported if m.split(".")[0] in HEAVY)
+
+
 def test_bad_usage_exits_2(capsys):
     with pytest.raises(SystemExit) as info:
         main(["propose"])
@@ -87,6 +104,24 @@ def test_installed_package_carries_its_catalog_and_templates():
         assert any(found.iterdir())
         if "site-packages" in str(package):  # a real install: the data must be inside the package
             assert found.parent == package
+
+
+def test_installed_package_ships_validators_compiled_from_its_schemas():
+    """The wheel carries the schemas compiled at build time (hatch_build.py), and they are the ones in use."""
+    import hashlib
+    import importlib
+
+    import stagewatch
+    from stagewatch.resources import SCHEMA_KINDS, compiled
+
+    package = __import__("pathlib").Path(stagewatch.__file__).parent
+    if "site-packages" not in str(package):
+        pytest.skip("a source checkout compiles the schemas when first used")
+    for kind in SCHEMA_KINDS:
+        shipped = importlib.import_module(f"stagewatch.compiled_schemas.{kind.replace('-', '_')}")
+        raw = (package / "schemas" / f"{kind}.schema.json").read_bytes()
+        assert shipped.SCHEMA_SHA256 == hashlib.sha256(raw).hexdigest()
+        assert compiled(kind).func is shipped.validate
 
 
 def test_the_readme_example_goes_through_propose_lint_render(tmp_path):

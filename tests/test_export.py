@@ -175,10 +175,12 @@ def test_an_upstream_change_inhibits_downstream_drift_alerts_in_alertmanager(tmp
     export_prometheus(plan, str(out))
     checks = ["frame_gate.output.pass_rate",  # the cause: the gate passes fewer frames
               "variety_tagger.input.brightness", "grade_assigner.input.blemish_score_drift",  # drift below
-              "grade_assigner.software.saturation"]  # not drift: a saturated grade_assigner still pages
+              "grade_assigner.software.saturation",  # not drift: a saturated grade_assigner still pages
+              "line_camera.input.brightness"]  # drift above the cause: never held back by it
     state = _alertmanager_states(tmp_path, out / "alertmanager.yml", [_exported(out, plan, c) for c in checks],
                                  lambda s: s["variety_tagger.input.brightness"]["inhibitedBy"])
     assert state["frame_gate.output.pass_rate"]["state"] == "active"
+    assert state["line_camera.input.brightness"]["state"] == "active"
     assert state["variety_tagger.input.brightness"]["state"] == "suppressed"  # still listed, marked inhibited
     assert state["grade_assigner.input.blemish_score_drift"]["inhibitedBy"]
     assert state["grade_assigner.software.saturation"]["state"] == "active"

@@ -125,11 +125,10 @@ def test_the_temporary_file_is_removed_when_the_write_is_killed_with_sigterm(tmp
     script = textwrap.dedent(f"""
         import os, time
         from stagewatch import safewrite
-        real_fsync = os.fsync
-        def slow(fd):
+        def slow(source, target):  # stop just before the rename, with the temporary file written
             print("writing", flush=True)
             time.sleep(30)
-        os.fsync = slow
+        os.replace = slow
         safewrite.safe_write({str(target)!r}, "new\\n" * 1000000)
     """)
     proc = subprocess.Popen([sys.executable, "-c", script], stdout=subprocess.PIPE, text=True)

@@ -15,7 +15,7 @@ from typing import Any, Iterator
 from stagewatch import yamlio
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
-from stagewatch.resources import data_dir, schema
+from stagewatch.resources import data_dir
 from stagewatch.spec import FieldSpec, Pipeline, Stage
 
 PIPELINE_OWNER = "pipeline"
@@ -68,7 +68,7 @@ def load_catalog(directory: str | Path | None = None) -> list[Rule]:
         raise StagewatchError("no rule files (*.yaml) here", file=str(root))
     for path in files:
         doc = yamlio.load(path)
-        yamlio.validate(doc, schema("catalog"))
+        yamlio.validate(doc, "catalog")
         for index, raw in enumerate(doc.data["rules"]):
             line = doc.line_of(("rules", index, "id"))
             if raw["id"] in seen:

@@ -9,13 +9,14 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from stagewatch import yamlio
 from stagewatch.errors import EXIT_INTERRUPTED, EXIT_OK, StagewatchError
 
 DRAFT_VERSION = 1
 
 
 def save_draft(path: Path, session: Any, output: str, existing_plan: str | None) -> None:
+    from stagewatch import yamlio
+
     data = {"draft_version": DRAFT_VERSION, "output": output, "plan": existing_plan,
             "answers": {**session.known, **session.answers}}
     yamlio.write_atomic(path, "# stagewatch interview draft: resume with `stagewatch interview --resume THIS`\n"
@@ -23,6 +24,8 @@ def save_draft(path: Path, session: Any, output: str, existing_plan: str | None)
 
 
 def load_answers(path: str) -> dict[str, Any]:
+    from stagewatch import yamlio
+
     doc = yamlio.load(path)
     data = doc.data
     if isinstance(data, dict) and "draft_version" in data:

@@ -5,12 +5,9 @@ from __future__ import annotations
 from dataclasses import asdict, dataclass
 from typing import Any, Iterator
 
-import jsonschema
-
 from stagewatch import durations, fold, yamlio
 from stagewatch.errors import StagewatchError
 from stagewatch.plan import all_metrics, budget_summary, pipeline_of
-from stagewatch.resources import validator
 
 LAYERS = ("software", "input", "output")
 LIVE = ("proposed", "accepted")
@@ -42,7 +39,7 @@ def lint_file(path: str) -> list[Finding]:
 
 
 def lint_document(doc: yamlio.Document) -> list[Finding]:
-    schema_errors = sorted(validator("plan").iter_errors(doc.data), key=lambda e: list(map(str, e.absolute_path)))
+    schema_errors = sorted(yamlio.schema_errors(doc.data, "plan"), key=lambda e: list(map(str, e.absolute_path)))
     if schema_errors:
         return [Finding(doc.path, doc.line_of(e.absolute_path), "schema", _schema_message(e)) for e in schema_errors]
     try:
@@ -53,7 +50,7 @@ def lint_document(doc: yamlio.Document) -> list[Finding]:
     return list(_meaning(doc))
 
 
-def _schema_message(error: jsonschema.ValidationError) -> str:
+def _schema_message(error: Any) -> str:
     message, expected = yamlio.describe_error(error)
     return message + (f" (expected: {expected})" if expected else "")
 

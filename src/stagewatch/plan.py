@@ -20,7 +20,6 @@ from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, mat
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
 from stagewatch.names import first_collision
-from stagewatch.resources import schema, validator
 from stagewatch.spec import Pipeline
 
 PLAN_VERSION = 1
@@ -345,7 +344,7 @@ def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
     if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
         raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
                               expected="a file written by `stagewatch propose`")
-    yamlio.validate(doc, schema("plan"), validator("plan"))
+    yamlio.validate(doc, "plan")
     pipeline_of(doc.data, doc)  # the description part, with its own schema and graph checks
     _check_metric_ids(doc)
     _check_thresholds(doc)

@@ -6,10 +6,11 @@ repository root, so we look there second.
 
 from __future__ import annotations
 
+import functools
 import json
 from functools import lru_cache
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 _PACKAGE = Path(__file__).resolve().parent
 
@@ -52,8 +53,31 @@ def format_checker() -> Any:
 
 
 @lru_cache(maxsize=None)
+def compiled(kind: str) -> Callable[[Any], Any]:
+    """The compiled validator for ``kind`` (fastjsonschema): it says whether a document is valid, some 20 times
+    faster than the interpreted one. Defaults in the schema are not filled in: a check must not change the data.
+    It raises ``fastjsonschema.JsonSchemaValueException`` on the first violation; :func:`validator` then words
+    the error."""
+    formats = {"bounded-duration": _bounded_duration}
+    try:  # compiled when the wheel was built (hatch_build.py), if still made from this very schema
+        import hashlib
+        import importlib
+
+        shipped = importlib.import_module(f"stagewatch.compiled_schemas.{kind.replace('-', '_')}")
+        raw = (_PACKAGE / "schemas" / f"{kind}.schema.json").read_bytes()
+        if shipped.SCHEMA_SHA256 == hashlib.sha256(raw).hexdigest():
+            return functools.partial(shipped.validate, custom_formats=formats)
+    except ImportError:  # a source checkout: compile now
+        pass
+    import fastjsonschema
+
+    return fastjsonschema.compile(schema(kind), formats=formats, use_default=False)
+
+
+@lru_cache(maxsize=None)
 def validator(kind: str) -> Any:
-    """A validator for ``kind`` that resolves references between our schemas without any network."""
+    """The interpreted validator for ``kind`` (jsonschema), which resolves references between our schemas without
+    any network. Used to word a violation the compiled validator found: every error, the best match, its path."""
     import jsonschema
     from referencing import Registry, Resource
 

@@ -179,6 +179,14 @@ def safe_write(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str 
         sys.stdout.write(text)
         sys.stdout.flush()
         return None
+    real = _write(path, text, inputs, expected)
+    _sync_directories([real.parent])
+    return real
+
+
+def _write(path: str | os.PathLike[str], text: str, inputs: Iterable[str | os.PathLike[str]],
+           expected: Snapshot | None, sweep: bool = True) -> Path:
+    """The atomic replace of one file, without the directory sync (the caller does it once per directory)."""
     shown = str(path)
     real = resolve_target(path, inputs)
     try:
@@ -191,25 +199,51 @@ def safe_write(path: str | os.PathLike[str], text: str, *, inputs: Iterable[str 
             stack.enter_context(locked(real))
             _check_unchanged(real, shown, expected)
         stack.enter_context(_signals_raise())
-        _replace(real, shown, data)
+        _replace(real, shown, data, sweep)
     return real
+
+
+def _sync_directories(directories: Iterable[Path]) -> None:
+    """One fsync per directory after the renames into it: the new names (and, on journalling file systems, the
+    data the renames committed) reach the disk together, instead of one fsync per file before its rename."""
+    for directory in dict.fromkeys(directories):
+        try:
+            fd = os.open(directory, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
+        except OSError:  # a directory that cannot be opened for reading cannot be synced either
+            continue
+        try:
+            with contextlib.suppress(OSError):  # some file systems refuse fsync on a directory
+                os.fsync(fd)
+        finally:
+            os.close(fd)
 
 
 STALE_TEMP_S = 3600.0  # a temporary file this old was left by a write killed with SIGKILL
 
 
-def _sweep(real: Path) -> None:
-    """Remove temporary files that a killed write of this same target left behind (SIGKILL cannot be caught)."""
+def _sweep(targets: Iterable[Path]) -> None:
+    """Remove temporary files that a killed write of these same targets left behind (SIGKILL cannot be caught);
+    each directory is listed once, however many of its files are written."""
     now = time.time()
-    with contextlib.suppress(OSError):
-        for old in real.parent.glob(f".{real.name}.*.tmp"):
-            with contextlib.suppress(OSError):
-                if now - old.stat().st_mtime > STALE_TEMP_S and old.is_file() and not old.is_symlink():
-                    old.unlink()
+    by_directory: dict[Path, set[str]] = {}
+    for real in targets:
+        by_directory.setdefault(real.parent, set()).add(real.name)
+    for directory, names in by_directory.items():
+        with contextlib.suppress(OSError):
+            for entry in os.scandir(directory):
+                if not (entry.name.startswith(".") and entry.name.endswith(".tmp")):
+                    continue
+                if entry.name[1:].rsplit(".", 2)[0] not in names:
+                    continue
+                with contextlib.suppress(OSError):
+                    if (now - entry.stat(follow_symlinks=False).st_mtime > STALE_TEMP_S
+                            and entry.is_file(follow_symlinks=False)):
+                        os.unlink(entry.path)
 
 
-def _replace(real: Path, shown: str, data: bytes) -> None:
-    _sweep(real)
+def _replace(real: Path, shown: str, data: bytes, sweep: bool = True) -> None:
+    if sweep:
+        _sweep([real])
     try:
         fd, tmp = tempfile.mkstemp(prefix=f".{real.name}.", suffix=".tmp", dir=real.parent)
     except OSError as exc:
@@ -218,8 +252,6 @@ def _replace(real: Path, shown: str, data: bytes) -> None:
         try:
             with os.fdopen(fd, "wb") as handle:
                 handle.write(data)
-                handle.flush()
-                os.fsync(handle.fileno())
             try:
                 mode = os.stat(real).st_mode & 0o777
             except FileNotFoundError:
@@ -243,5 +275,6 @@ def safe_write_all(files: dict[Path, str], *, inputs: Iterable[str | os.PathLike
     if len(set(targets)) != len(targets):  # two outputs through symlinks onto one file
         raise StagewatchError("two of the files to write are the same file (through a symbolic link)",
                               file=str(next(iter(files))).rsplit("/", 1)[0])
-    for path, text in files.items():
-        safe_write(path, text, inputs=sources)
+    _sweep(targets)
+    written = [_write(path, text, sources, None, sweep=False) for path, text in files.items()]
+    _sync_directories(real.parent for real in written)

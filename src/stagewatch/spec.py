@@ -12,7 +12,6 @@ from typing import Any
 from stagewatch import durations, yamlio
 from stagewatch.errors import StagewatchError
 from stagewatch.names import first_collision
-from stagewatch.resources import schema
 
 # Rule of thumb of the trade (common practice): business and machine data shifts within hours, a large consumer
 # population within days to weeks.
@@ -143,7 +142,7 @@ def from_document(doc: yamlio.Document) -> Pipeline:
     if not isinstance(doc.data, dict):
         raise StagewatchError("a pipeline description is a mapping with 'pipeline' and 'stages'", file=doc.path,
                               line=1, expected="pipeline: NAME, stages: [...]")
-    yamlio.validate(doc, schema("pipeline"))
+    yamlio.validate(doc, "pipeline")
     data = doc.data
     context = data.get("context", "consumer")
     stages = []

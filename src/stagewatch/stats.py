@@ -17,11 +17,18 @@ from __future__ import annotations
 import math
 from functools import lru_cache
 from dataclasses import dataclass
-from typing import Protocol
+from typing import TYPE_CHECKING, Protocol
 
-import numpy as np
-from scipy import optimize
-from scipy import stats as st
+from stagewatch.lazy import LazyModule
+
+if TYPE_CHECKING:
+    import numpy as np
+    from scipy import optimize
+    from scipy import stats as st
+else:  # imported on first use: commands that only read a plan never load scipy
+    np = LazyModule("numpy")
+    optimize = LazyModule("scipy.optimize")
+    st = LazyModule("scipy.stats")
 
 from stagewatch import tails
 

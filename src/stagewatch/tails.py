@@ -21,8 +21,16 @@ from __future__ import annotations
 import math
 from functools import lru_cache
 
-import numpy as np
-from scipy import stats as st
+from typing import TYPE_CHECKING
+
+from stagewatch.lazy import LazyModule
+
+if TYPE_CHECKING:
+    import numpy as np
+    from scipy import stats as st
+else:  # imported on first use
+    np = LazyModule("numpy")
+    st = LazyModule("scipy.stats")
 
 _EDGE = 1e-13  # probability mass left out at each end of a sum over the reference (far below any alpha we use)
 _EPS = 1e-9  # guards floor() and ceil() against float error at exact lattice points

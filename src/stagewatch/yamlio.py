@@ -7,13 +7,15 @@ import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Iterable
+from typing import TYPE_CHECKING, Any, Iterable
 
-import jsonschema
 import yaml
 
 from stagewatch.errors import StagewatchError
 from stagewatch.safewrite import Snapshot, safe_write
+
+if TYPE_CHECKING:
+    import jsonschema
 
 
 @dataclass
@@ -193,7 +195,7 @@ def load(path: str | os.PathLike[str]) -> Document:
     return doc
 
 
-def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
+def describe_error(error: "jsonschema.ValidationError") -> tuple[str, str | None]:
     """A schema violation in words: (where and what, what was expected)."""
     where = ".".join(str(k) for k in error.absolute_path) or "top level"
     validator = error.validator
@@ -217,15 +219,41 @@ def describe_error(error: jsonschema.ValidationError) -> tuple[str, str | None]:
     return f"{where}: {error.message}", error.schema.get("description")
 
 
-def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> None:
-    """Raise one StagewatchError for the most relevant schema violation, with its YAML line."""
-    if validator is None:
-        from stagewatch.resources import format_checker
+def schema_errors(data: Any, kind: str) -> list[Any]:
+    """Every violation of schema ``kind`` in ``data`` (``jsonschema.ValidationError``), or none.
 
-        validator = jsonschema.Draft202012Validator(schema, format_checker=format_checker())
-    errors = list(validator.iter_errors(doc.data))
+    The compiled validator decides; only when it finds a violation does the interpreted one list and word them.
+    Should the two ever disagree, the compiled one's finding is kept, so no invalid document passes."""
+    import fastjsonschema
+
+    from stagewatch.resources import compiled, validator
+
+    try:
+        compiled(kind)(data)
+    except fastjsonschema.JsonSchemaValueException as exc:
+        errors = list(validator(kind).iter_errors(data))
+        if errors:
+            return errors
+        import jsonschema
+
+        return [jsonschema.ValidationError(exc.message, path=_pointer(exc.path), instance=exc.value,
+                                           validator=str(exc.rule), validator_value=exc.rule_definition,
+                                           schema=exc.definition if isinstance(exc.definition, dict) else {})]
+    return []
+
+
+def _pointer(path: Any) -> list[Any]:
+    """fastjsonschema's path (``["data", "stages", 0]``) without its leading name."""
+    return list(path or [])[1:]
+
+
+def validate(doc: Document, kind: str) -> None:
+    """Raise one StagewatchError for the most relevant violation of schema ``kind``, with its YAML line."""
+    errors = schema_errors(doc.data, kind)
     if not errors:
         return
+    import jsonschema
+
     best = jsonschema.exceptions.best_match(errors)
     # Descend into oneOf/anyOf to the most specific reason.
     while best.context:
@@ -241,7 +269,26 @@ def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> No
 
 
 class _Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]
-    pass
+    """libyaml's emitter with PyYAML's safe representer. The emitter asks the resolver, for every scalar, whether
+    its text would read back as another type (and so needs quotes); generated files repeat the same texts
+    thousands of times, so the answers are kept per text. The rules are PyYAML's own, so the output is the same."""
+
+    _resolved: dict[tuple[str, tuple[bool, bool]], str] = {}
+
+    def resolve(self, kind: type, value: Any, implicit: Any) -> Any:
+        if kind is not yaml.ScalarNode:
+            return super().resolve(kind, value, implicit)
+        key = (value, implicit)
+        tag = self._resolved.get(key)
+        if tag is None:
+            tag = self._resolved[key] = super().resolve(kind, value, implicit)
+        return tag
+
+    def represent_data(self, data: Any) -> yaml.Node:
+        if type(data) is str:  # never an alias: straight to the one representer for text
+            self.alias_key = None  # as the base class does for text, or the node would be kept as an alias target
+            return _str_presenter(self, data)
+        return super().represent_data(data)
 
 
 def _str_presenter(dumper: yaml.SafeDumper, value: str) -> yaml.Node:

@@ -3,6 +3,7 @@ inhibition along the pipeline graph, and routing by owner and severity."""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Any
 
 import networkx as nx
@@ -42,27 +43,101 @@ def drift_below(plan: dict[str, Any], live: set[str]) -> dict[str, list[str]]:
             for s in graph}
 
 
-def alertmanager_config(plan: dict[str, Any], owners: list[str]) -> dict[str, Any]:
+LINEAGE_LABEL = "lineage"
+
+
+@dataclass
+class Lineage:
+    """Where every stage sits in a cover of the graph by chains (stages each upstream of the next), and what lies
+    above it.
+
+    Stages are taken in topological order; a stage continues the first chain whose last stage lies upstream of
+    it, or starts a new one, so there are about as many chains as stages side by side; stages with nothing below
+    (most often the last ones) hold nothing back and take no place on a chain. On a chain, the stages above a given stage are a prefix, so what lies above
+    a stage is, per chain, the last position above it: ``above["d"] == {0: 4, 2: 1}`` says that positions 0-4 of
+    chain 0 and 0-1 of chain 2 are the stages upstream of ``d``. Stage ``x`` at position ``i`` of chain ``c`` is
+    upstream of ``d`` exactly when ``above[d][c] >= i``. Alerts carry ``above`` as the label ``lineage`` (``0:4,2:1``)
+    and one inhibition rule per stage matches it with a regular expression of a few terms, so the configuration
+    grows with the stages, not with the pairs of stages; the label grows with the number of chains beside each
+    other (1 on a chain, a handful in a pipeline people draw).
+    """
+
+    position: dict[str, tuple[int, int]]  # stage -> (chain, position on it)
+    above: dict[str, dict[int, int]]  # stage -> {chain: last position upstream of the stage}
+
+    @classmethod
+    def of(cls, plan: dict[str, Any]) -> "Lineage":
+        graph = plan_graph(plan)
+        order = {s["id"]: i for i, s in enumerate(plan["stages"])}
+        position: dict[str, tuple[int, int]] = {}
+        above: dict[str, dict[int, int]] = {}
+        lengths: list[int] = []  # stages on each chain so far
+        for stage in nx.lexicographical_topological_sort(graph, key=order.__getitem__):
+            merged: dict[int, int] = {}
+            for parent in graph.predecessors(stage):
+                for chain, last in above[parent].items():
+                    merged[chain] = max(merged.get(chain, -1), last)
+                chain, at = position[parent]
+                merged[chain] = max(merged.get(chain, -1), at)
+            above[stage] = dict(sorted(merged.items()))
+            if not graph.out_degree(stage):  # nothing below: it never holds anything back, so needs no place
+                continue
+            # Continue the first chain whose last stage lies upstream (then the chain stays ordered by reach).
+            extend = next((c for c in sorted(merged) if merged[c] == lengths[c] - 1), None)
+            if extend is None:
+                extend = len(lengths)
+                lengths.append(0)
+            position[stage] = (extend, lengths[extend])
+            lengths[extend] += 1
+        return cls(position, above)
+
+    def label(self, stage: str) -> str | None:
+        """The ``lineage`` label of an alert on ``stage`` (None for a stage with nothing upstream)."""
+        above = self.above.get(stage)
+        return ",".join(f"{chain}:{last}" for chain, last in above.items()) if above else None
+
+    def below_pattern(self, stage: str) -> str | None:
+        """A regular expression (anchored, as Alertmanager's are) matching the lineage of every stage below; None
+        for a stage with nothing below."""
+        if stage not in self.position:
+            return None
+        chain, at = self.position[stage]
+        return f"(.*,)?{chain}:({at_least(at)})(,.*)?"
+
+
+def at_least(number: int) -> str:
+    """A regular expression for the decimal numbers >= ``number`` (no leading zeros), e.g. 27 ->
+    ``27|2[8-9]|[3-9][0-9]|[1-9][0-9]{2,}``."""
+    digits = str(number)
+    terms = [digits]
+    for k, d in enumerate(digits):
+        if d != "9":
+            terms.append(f"{digits[:k]}[{int(d) + 1}-9]" + "[0-9]" * (len(digits) - k - 1))
+    terms.append(f"[1-9][0-9]{{{len(digits)},}}")
+    return "|".join(terms)
+
+
+def alertmanager_config(plan: dict[str, Any], owners: list[str], lineage: Lineage | None = None) -> dict[str, Any]:
     pipeline = plan["pipeline"]
-    graph = plan_graph(plan)
-    order: dict[str, int] = {s["id"]: i for i, s in enumerate(plan["stages"])}
+    lineage = lineage or Lineage.of(plan)
     inhibit = [{
         # A critical alert hides the warn alert of the same check.
         "source_matchers": ['level="critical"'], "target_matchers": ['level="warn"'],
         "equal": ["alertname", "pipeline", "stage"],
     }]
     for stage in plan["stages"]:
-        below = sorted(nx.descendants(graph, stage["id"]), key=lambda n: order[n])
-        if not below:
+        pattern = lineage.below_pattern(stage["id"])
+        if pattern is None:
             continue
         # Only a critical input or output alert upstream that moves with the data explains drift below; a software
         # alert (a model's age) holds back nothing, and contract, quality and software alerts below are never
-        # held back (their `drift` label is false).
+        # held back (their `drift` label is false). The stages below are those whose lineage passes through
+        # this stage's place on its chain.
         inhibit.append({
             "source_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage="{stage["id"]}"',
                                 'level="critical"', 'explains="true"'],
-            "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', f'stage=~"{"|".join(below)}"',
-                                'drift="true"'],
+            "target_matchers": [f'pipeline="{matcher_value(pipeline)}"', 'drift="true"',
+                                f'{LINEAGE_LABEL}=~"{pattern}"'],
             "equal": ["pipeline"],
         })
     receivers = [{"name": "stagewatch-default",

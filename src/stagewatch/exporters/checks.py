@@ -5,11 +5,9 @@ from __future__ import annotations
 import json
 from typing import Any, Sequence
 
-import jsonschema
-
 from stagewatch.safewrite import STDOUT, safe_write
 from stagewatch.exporters import live_metrics
-from stagewatch.resources import validator
+from stagewatch.yamlio import schema_errors
 
 CHECKS_VERSION = 1
 
@@ -36,10 +34,9 @@ def export_checks(plan: dict[str, Any], target: str, inputs: Sequence[str] = (),
     """Write the check configuration to ``target`` (``-``: standard output): one file, named by the user, so
     there is no directory of generated files to keep (``force`` is accepted for a uniform call)."""
     document = checks_document(plan)
-    try:
-        validator("checks").validate(document)
-    except jsonschema.ValidationError as exc:  # our own output must meet our own schema
-        raise AssertionError(f"checks export breaks its schema: {exc.message}") from exc
+    errors = schema_errors(document, "checks")
+    if errors:  # our own output must meet our own schema
+        raise AssertionError(f"checks export breaks its schema: {errors[0].message}")
     safe_write(target, json.dumps(document, indent=2) + "\n", inputs=inputs)
     if target == STDOUT:
         return []

@@ -22,8 +22,8 @@ from stagewatch.names import alert_name
 from stagewatch.owned import write_owned
 from stagewatch.safewrite import STDOUT
 from stagewatch.exporters import live_metrics
-from stagewatch.exporters.alertmanager import (AM_HEADER, alertmanager_config, drift_below, explains_drift,
-                                                is_drift)
+from stagewatch.exporters.alertmanager import (AM_HEADER, LINEAGE_LABEL, Lineage, alertmanager_config,
+                                                drift_below, explains_drift, is_drift)
 from stagewatch.exporters.instrumentation import instrumentation_markdown
 from stagewatch.exporters.level_signals import CounterLevelSignal
 from stagewatch.exporters.signals import (FAMILIES, Series, ShareSignal, Signal, counter,
@@ -90,6 +90,7 @@ class GroupExport:
     windowed: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
     cases: list["Case"] = field(default_factory=list)
     alerts: int = 0
+    lineage: str | None = None  # the stage's lineage label (alertmanager.Lineage)
 
     def target(self, sig: Signal) -> list[dict[str, Any]]:
         """Where a signal's rules go: its window's group if its threshold was sized against a budget."""
@@ -136,12 +137,16 @@ class Case:
     alert_tests: list[dict[str, Any]]
 
 
-def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str) -> dict[str, str]:
+def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str,
+            lineage: str | None = None) -> dict[str, str]:
+    drift = is_drift(metric)
     labels: dict[str, str] = {"severity": severity, "level": level, "layer": metric["layer"],
-                              "drift": "true" if is_drift(metric) else "false",
+                              "drift": "true" if drift else "false",
                               "explains": "true" if explains_drift(metric) else "false"}
     if owner:
         labels["owner"] = owner
+    if drift and lineage:  # what an upstream alert matches to hold this one back (alertmanager.Lineage)
+        labels[LINEAGE_LABEL] = lineage
     return labels
 
 
@@ -165,9 +170,43 @@ def _annotations(metric: dict[str, Any], level: str, threshold: float, stage_inf
 
 
 def _series_lines(series: Series) -> list[dict[str, str]]:
-    def fmt(v: float | None) -> str:
+    return [{"series": key, "values": _compact(values)} for key, values in series.values.items()]
+
+
+def _compact(values: Sequence[float | None]) -> str:
+    """Sample values in promtool's expanding notation: a run that promtool's ``a+bxn`` rebuilds (it starts at
+    ``a`` and adds ``b`` n times, in float64) within the precision the values are written with (1e-9, relative
+    above 1) is written as one term, so a steady counter or gauge costs a few characters instead of one number
+    per step. Missing samples stay ``_``."""
+    def text(v: float | None) -> str:
         return "_" if v is None else _fmt(round(v, 9))
-    return [{"series": key, "values": " ".join(fmt(v) for v in values)} for key, values in series.values.items()]
+
+    terms: list[str] = []
+    i, count = 0, len(values)
+    while i < count:
+        first = values[i]
+        second = values[i + 1] if i + 2 < count else None
+        if first is None or second is None:
+            terms.append(text(first))
+            i += 1
+            continue
+        head = text(first)
+        step_text = _fmt(round(abs(second - first), 9))
+        increment = float(step_text) if second >= first else -float(step_text)
+        end, value = i, float(head)
+        while end + 1 < count:
+            target = values[end + 1]
+            if target is None or abs(value + increment - target) > 1e-9 * max(1.0, abs(target)):
+                break
+            value += increment
+            end += 1
+        if end - i < 2:  # two values: as short written out
+            terms.append(head)
+            i += 1
+            continue
+        terms.append(f"{head}{'-' if second < first else '+'}{step_text}x{end - i}")
+        i = end + 1
+    return " ".join(terms)
 
 
 def _step(window: str) -> int:
@@ -192,7 +231,7 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
         rule: dict[str, Any] = {"alert": name, "expr": _compare(value, metric, threshold, sig.level_reading)}
         if sig.for_ != "0s":
             rule["for"] = sig.for_
-        labels = _labels(metric, owner, level, severity)
+        labels = _labels(metric, owner, level, severity, group.lineage)
         annotations = _annotations(metric, level, threshold, sig.stage_info)
         if explains and level == "critical":
             shown = ", ".join(explains[:EXPLAINS_SHOWN])
@@ -378,12 +417,14 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
     blocks.append((PIPELINE_STAGE, {"id": PIPELINE_STAGE}, plan.get("pipeline_metrics", [])))
     families: dict[str, dict[str, Any]] = {}
     below_drift = drift_below(plan, live)
+    lineage = Lineage.of(plan)
     for stage_id, info, metrics in blocks:
         owner = info.get("owner") or plan.get("owner")
         if owner:
             owners.add(owner)
         group = GroupExport(name=f"stagewatch-{pipeline}-{stage_id}", stage=stage_id,
-                            file=f"{stage_id}.rules.yml")
+                            file=f"{stage_id}.rules.yml",
+                            lineage=lineage.label(stage_id) if stage_id in lineage.position else None)
         for metric in _with_sequential(metrics):
             if metric["id"].split("#")[0] not in live:
                 continue
@@ -424,7 +465,7 @@ def build(plan: dict[str, Any]) -> PrometheusExport:
                                             "warn": m.get("warn"), "critical": m.get("critical"),
                                             "direction": m["direction"], "measure": m.get("measure", "")}
                                   for m in all_metrics(plan) if m["id"] in live}}
-    return PrometheusExport(groups, alertmanager_config(plan, sorted(owners)), instrumentation)
+    return PrometheusExport(groups, alertmanager_config(plan, sorted(owners), lineage), instrumentation)
 
 
 RULES_HEADER = "# Generated by `stagewatch export --to prometheus` from the plan; edit the plan, then re-export.\n"

@@ -13,6 +13,7 @@ KS distances and mean shifts need the reference's full distribution or variance,
 from __future__ import annotations
 
 import math
+from functools import lru_cache
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, Sequence
 
@@ -258,22 +259,9 @@ class BinSignal(Signal):
 
     def shares_for(self, value: float, items: float) -> list[float]:
         """Window shares whose statistic on ``items`` window items against the reference equals ``value``."""
-        b = self.bins
-        ref = self.reference_shares()
-
-        def shares(lam: float) -> list[float]:
-            return [(1 - lam) / b + (lam if i == 0 else 0.0) for i in range(b)]
-
-        def stat(lam: float) -> float:
-            return statistic_of(self.metric["statistic"], [items * x for x in shares(lam)], ref)
-
         if value <= 0:
-            return ref
-        lo, hi = 0.0, 1.0
-        for _ in range(100):
-            mid = (lo + hi) / 2
-            lo, hi = (mid, hi) if stat(mid) < value else (lo, mid)
-        return shares((lo + hi) / 2)
+            return self.reference_shares()
+        return list(_fault_shares(self.metric["statistic"], self.bins, value, items))
 
     def simulate(self, value, steps, start, step_s):
         b = self.bins
@@ -292,6 +280,23 @@ class BinSignal(Signal):
     def feasible(self, value):
         top = statistic_of(self.metric["statistic"], [1e9] + [0.0] * (self.bins - 1), self.reference_shares())
         return 0 <= value < top
+
+
+@lru_cache(maxsize=None)
+def _fault_shares(statistic: str, bins: int, value: float, items: float) -> tuple[float, ...]:
+    """Bin shares (the first bin grown, the others shrunk alike) at which ``statistic`` on ``items`` items against
+    uniform reference shares equals ``value``, by bisection. It depends only on these four numbers, which many
+    checks share, so each is solved once per export."""
+    ref = [1 / bins] * bins
+
+    def shares(lam: float) -> list[float]:
+        return [(1 - lam) / bins + (lam if i == 0 else 0.0) for i in range(bins)]
+
+    lo, hi = 0.0, 1.0
+    for _ in range(100):
+        mid = (lo + hi) / 2
+        lo, hi = (mid, hi) if statistic_of(statistic, [items * x for x in shares(mid)], ref) < value else (lo, mid)
+    return tuple(shares((lo + hi) / 2))
 
 
 def statistic_of(statistic: str, counts: Sequence[float], reference: Sequence[float]) -> float:
