@@ -72,7 +72,7 @@ def _located(doc: yamlio.Document) -> Iterator[tuple[tuple[Any, ...], dict[str, 
             yield (key, j), metric, "pipeline" if key == "pipeline_metrics" else None
 
 
-def _ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
+def ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
     """Warn must be reached before critical. Drift statistics are sizes of change (larger is worse in every
     direction); only fixed-limit levels read as levels, where 'below' means lower is worse."""
     if statistic != "level" or direction == "above":
@@ -108,7 +108,7 @@ def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
                           f"metric '{mid}': reference {metric['reference']} is shorter than window "
                           f"{metric['window']}", mid)
         warn, critical = metric.get("warn"), metric.get("critical")
-        if warn is not None and critical is not None and not _ordered(warn, critical, metric["direction"],
+        if warn is not None and critical is not None and not ordered(warn, critical, metric["direction"],
                                                                                   metric["statistic"]):
             yield Finding(path, doc.line_of((*where, "warn")), "threshold-order",
                           f"metric '{mid}': warn {warn:g} must come before critical {critical:g} for direction "
