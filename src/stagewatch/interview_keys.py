@@ -169,7 +169,7 @@ def check_known(question: Question, value: Any) -> Any:
     if question.validate is not None:
         problem = question.validate(value)
         if problem:
-            raise bad(question.help or None, f"is refused: {problem}")
+            raise bad(None, f"is refused: {problem}")
     return value
 
 

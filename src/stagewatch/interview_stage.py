@@ -3,6 +3,7 @@ plan's windows and quality checks depend on (serving, batch period, change rate,
 
 from __future__ import annotations
 
+import functools
 from typing import Any, Callable
 
 from stagewatch import spec, yamlio
@@ -86,7 +87,8 @@ def _settings(s: Any, key: str, stage: dict[str, Any], head: dict[str, Any], cur
     run_every = cur.get("run_every") if cur else previous.get("run_every", DEFAULT_RUN_EVERY)
     change_rate = cur.get("change_rate", _change_rate(serving, run_every, head))
     learned = stage["kind"] == "learned"
-    labels = cur.get("labels", "delayed" if learned else "none")
+    can_use_labels = stage["output"] in labelled_outputs()
+    labels = cur.get("labels", "delayed" if learned and can_use_labels else "none")
     label_delay = cur.get("label_delay", spec.DEFAULT_LABEL_DELAY)
     labelled_share = cur.get("labelled_share", 1)
     latency = cur.get("latency_slo_ms")
@@ -123,7 +125,8 @@ def _settings(s: Any, key: str, stage: dict[str, Any], head: dict[str, Any], cur
         if learned:
             labels = s.ask(STAGE["labels"].question(
                 f"{key}.labels", "Do its predictions get ground-truth labels?",
-                "With labels the plan watches quality itself; without, a proxy.", default=labels))
+                "With labels the plan watches quality itself; without, a proxy.", default=labels,
+                validate=None if can_use_labels else _no_label_check(stage["output"])))
             if labels == "delayed":
                 label_delay = s.ask(STAGE["label_delay"].question(
                     f"{key}.label_delay", "How long until labels arrive? (e.g. 3d)",
@@ -178,5 +181,28 @@ def _outputs_fit(head: dict[str, Any], earlier: list[dict[str, Any]],
         except StagewatchError as exc:
             return exc.message
         return None
+
+    return check
+
+
+@functools.lru_cache(maxsize=1)
+def labelled_outputs() -> frozenset[str]:
+    """Outputs whose labels a catalog quality check reads (the ML Test Score's check 7 with labels)."""
+    from stagewatch.catalog import load_catalog
+
+    out: set[str] = set()
+    for rule in load_catalog():
+        if rule.scope == "stage" and "labels" in rule.when and set(rule.when["labels"]) - {"none"} and any(
+                7 in m.get("ml_test_score", []) for m in rule.metrics):
+            out.update(rule.when.get("output", []))
+    return frozenset(out)
+
+
+def _no_label_check(output: str) -> Callable[[Any], str | None]:
+    def check(value: Any) -> str | None:
+        if value == "none":
+            return None
+        return (f"no quality check reads labels of a '{output}' output yet: answer none, and the plan watches "
+                "agreement with a shadow model instead")
 
     return check

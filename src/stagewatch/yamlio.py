@@ -256,8 +256,8 @@ def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> No
     errors = list(itertools.islice(validator.iter_errors(doc.data), 10 * wording.MAX_LISTED))
     if not errors:
         return
-    problems = []  # (line, message, expected), the most relevant first
-    for error in [jsonschema.exceptions.best_match(errors)] + errors:
+    problems = []  # (line, message, expected), in file order
+    for error in errors:
         while error.context:  # descend into oneOf/anyOf to the most specific reason
             error = jsonschema.exceptions.best_match(error.context)
         message, expected = describe_error(error)
@@ -266,8 +266,8 @@ def validate(doc: Document, schema: dict[str, Any], validator: Any = None) -> No
         problem = (doc.line_of(where + extra[:1]), message, expected)
         if problem not in problems:
             problems.append(problem)
-    line, message, expected = problems[0]
-    rest = sorted(problems[1:], key=lambda p: p[0] or 0)
+    problems.sort(key=lambda p: p[0] or 0)
+    (line, message, expected), rest = problems[0], problems[1:]
     message += wording.problem_list([f"{doc.path}:{n}: {m}" if n else f"{doc.path}: {m}" for n, m, _ in rest])
     raise StagewatchError(message, file=doc.path, line=line, expected=expected)
 
