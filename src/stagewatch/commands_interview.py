@@ -98,13 +98,13 @@ def command(args: argparse.Namespace) -> int:
         session.recap()
     draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
     try:
-        lines = interview.run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
+        said = interview.run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
     except (interview.Interrupted, KeyboardInterrupt):  # at a prompt or while the plan is being composed
         save_draft(draft_path, session, output, existing_plan)
         print(f"\nstopped; your answers are saved in {draft_path}\n"
               f"continue with: stagewatch interview --resume {draft_path}", file=sys.stderr)
         return EXIT_INTERRUPTED
-    for line in lines:
+    for line in said:
         print(line)
     if args.resume and draft_path.exists():
         draft_path.unlink()

@@ -9,7 +9,6 @@ a resumed session are the same thing: answers looked up before anything is asked
 from __future__ import annotations
 
 import sys
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Sequence
 

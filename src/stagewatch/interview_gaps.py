@@ -90,8 +90,13 @@ def _fix(finding: Finding, plan: dict[str, Any], fresh: dict[str, dict[str, Any]
     if finding.code == "budget":
         edited = [m for m in metrics.values() if "fingerprint" not in m and m["id"] in fresh
                   and (m.get("warn"), m.get("critical")) != (fresh[m["id"]].get("warn"), fresh[m["id"]].get("critical"))]
+        targets = edited or [m for m in metrics.values() if m["id"] in fresh]
+
+        def restore_all() -> None:
+            for m in targets:
+                _restore(m, fresh[m["id"]])
         return ("restore the proposed thresholds of " + (", ".join(m["id"] for m in edited) or "every metric"),
-                lambda: [_restore(m, fresh[m["id"]]) for m in edited or metrics.values() if m["id"] in fresh])
+                restore_all)
     if finding.code == "duplicate-signal" and subject in metrics:
         first = next((m for m in metrics if m != subject and f"'{m}'" in finding.message), "another check")
 

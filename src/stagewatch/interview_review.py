@@ -101,7 +101,8 @@ def _window_fits(m: dict[str, Any]) -> Callable[[Any], str | None]:
         if problem:
             return problem
         reference = m.get("reference")
-        if durations.is_duration(reference) and durations.parse(reference) < durations.parse(value):
+        if isinstance(reference, str) and durations.is_duration(reference) and (
+                durations.parse(reference) < durations.parse(value)):
             return f"the window must fit in the reference ({reference})"
         return None
 
