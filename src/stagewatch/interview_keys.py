@@ -101,17 +101,14 @@ _SHAPES: list[tuple[str, dict[str, Form]]] = [
     (r"pipeline", PIPELINE),
     (r"stages\.\d+", {**STAGE, "more": CONFIRM}),
     (r"revise\.\d+\.stage", STAGE),
-    (r"revise", {}),  # revise.N itself: see _whole
     (r"revise\.\d+", {"which": WHICH}),
     (rf"review\.{_METRIC_ID}", {"note": NOTE}),
     (rf"review\.{_STAGE_ID}", {layer: REVIEW for layer in LAYERS}),
     (rf"review\.{_STAGE_ID}\.(?:software|input|output)", {"accepted": PICK, "edit": PICK}),
     (rf"edit\.{_METRIC_ID}", EDIT),
     (r"gaps", {"fix": CONFIRM, "drop_stale": CONFIRM}),
-    (r"gaps\.stale", {}),
 ]
-_WHOLE: list[tuple[str, Form]] = [(r"revise\.\d+", REVISE), (rf"gaps\.stale\.{_METRIC_ID}", CONFIRM),
-                                  (rf"gaps\.fix\.{_METRIC_ID}", CONFIRM)]
+_WHOLE: list[tuple[str, Form]] = [(r"revise\.\d+", REVISE), (rf"gaps\.stale\.{_METRIC_ID}", CONFIRM)]
 
 
 def form_of(key: str) -> Form | None:
