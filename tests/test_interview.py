@@ -63,8 +63,9 @@ def keys(monkeypatch):
 
 
 def _learned_stage(name: str) -> list[str]:
-    # id, kind (learned is the default after the first stage), modality, output, upstream, volume, keep defaults
-    return [CLEAR + name + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
+    # id, kind (learned is the default after the first stage), modality, output, upstream, volume, output fields,
+    # keep defaults
+    return [CLEAR + name + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
 
 
 def _head(count: int) -> list[str]:
@@ -73,9 +74,9 @@ def _head(count: int) -> list[str]:
 
 def test_a_whole_interview_with_defaults_gives_a_lint_clean_plan(keys, tmp_path):
     script = _head(3)
-    script += [CLEAR + "camera" + ENTER, ENTER, DOWN + ENTER, ENTER, ENTER, ENTER]  # source of images, records
+    script += [CLEAR + "camera" + ENTER, ENTER, DOWN + ENTER, ENTER, ENTER, ENTER, ENTER]  # source of images, records
     script += _learned_stage("sizer")
-    script += [CLEAR + "packer" + ENTER, DOWN + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]  # rule-based gate
+    script += [CLEAR + "packer" + ENTER, DOWN + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]  # rule-based gate
     # accept all: the layers of three stages (a camera source runs none of the team's software, so it has no
     # software layer), then two layers of the whole pipeline
     script += [ENTER] * 10
@@ -95,8 +96,8 @@ def test_a_whole_interview_with_defaults_gives_a_lint_clean_plan(keys, tmp_path)
     assert all(m["status"] == "accepted" for m in plan["pipeline_metrics"])
     description = yaml.safe_load((tmp_path / "plan.pipeline.yaml").read_text())
     assert description["pipeline"] == "grading" and len(description["stages"]) == 3
-    # A learned stage with the defaults accepted took 7 questions.
-    assert len([q for q in k.asked if q.startswith("stages.1.")]) == 7
+    # A learned stage with the defaults accepted took 8 questions.
+    assert len([q for q in k.asked if q.startswith("stages.1.")]) == 8
 
 
 def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
@@ -105,8 +106,8 @@ def test_validation_errors_are_shown_at_the_prompt(keys, tmp_path):
     script += [ENTER, CLEAR + "2" + ENTER]
     script += [CLEAR + "Bad Name" + ENTER + CLEAR + "pipeline" + ENTER + CLEAR + "feed" + ENTER, ENTER, ENTER, ENTER,
                CLEAR + "0" + ENTER + CLEAR + "fast" + ENTER + CLEAR + "500" + ENTER,
-               "weight:kilos" + ENTER + CLEAR + "weight:numeric, site:category" + ENTER, ENTER]
-    script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER, ENTER]
+               "weight:kilos" + ENTER + CLEAR + "weight:numeric, site:category" + ENTER, ENTER, ENTER]
+    script += [CLEAR + "feed" + ENTER + CLEAR + "model" + ENTER] + [ENTER] * 8
     script += [ENTER] * 7  # input and output of the source, three layers of the model, two of the pipeline
     keys(script)
     interview.run(interview.Session(interactive=True, out=lambda _: None), str(tmp_path / "plan.yaml"))
@@ -150,7 +151,7 @@ def test_ctrl_c_saves_a_draft_and_resume_loses_nothing(keys, tmp_path, capsys):
     assert saved["pipeline.name"] == "grading" and saved["stages.0.id"] == "feed" and saved["stages.0.kind"] == "source"
     assert "--resume" in capsys.readouterr().err and not out.exists()
     # Resume: only the remaining questions are asked.
-    k = keys([ENTER, ENTER, ENTER, ENTER, ENTER] + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 7)
+    k = keys([ENTER] * 6 + _learned_stage("model") + [ENTER, ENTER] + [ENTER] * 7)
     assert main(["interview", "--resume", str(draft)]) == 0
     assert k.asked[0] == "stages.0.modality"
     plan = yaml.safe_load(out.read_text())

@@ -208,8 +208,32 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
     for proposal in out:
         if proposal.id in seen:
             other = seen[proposal.id]
+            field_clash = _field_clash(pipeline, proposal, other)
+            if field_clash:
+                raise field_clash
             raise StagewatchError(
                 f"rules '{other.rule.id}' and '{proposal.rule.id}' both propose metric '{proposal.id}'",
                 file=proposal.rule.file, line=proposal.rule.line, expected="metric names unique per stage and layer")
         seen[proposal.id] = proposal
     return out
+
+
+def _field_clash(pipeline: Pipeline, first: Proposal, second: Proposal) -> StagewatchError | None:
+    """Two rules propose one metric id because of a field the user named: point to the field in the user's
+    description, not into the catalog."""
+    by_field = first if first.field is not None else second if second.field is not None else None
+    if by_field is None or by_field.field is None:
+        return None
+    other = second if by_field is first else first
+    key = "inputs" if by_field.rule.when.get("each") == "input_field" else "outputs"
+    index = next(i for i, st in enumerate(pipeline.stages) if st.id == by_field.owner)
+    stage = pipeline.stages[index]
+    position = next(j for j, f in enumerate(getattr(stage, key)) if f.name == by_field.field.name)
+    line = None
+    if pipeline.source_path and Path(pipeline.source_path).is_file():
+        line = yamlio.load(pipeline.source_path).line_of(("stages", index, key, position, "name"))
+    where = Path(other.rule.file).name + (f":{other.rule.line}" if other.rule.line else "")
+    return StagewatchError(
+        f"stage '{stage.id}': the {key[:-1]} field '{by_field.field.name}' gives metric '{by_field.id}', which "
+        f"rule '{other.rule.id}' ({where} in the catalog) already proposes for this stage",
+        file=pipeline.source_path, line=line, expected=f"another name for the field (not '{by_field.field.name}')")

@@ -24,11 +24,16 @@ def save_draft(path: Path, session: Any, output: str, existing_plan: str | None)
 
 
 def load_answers(path: str) -> dict[str, Any]:
+    """The answers of an answers file or a draft, with the line of each key (``lines``), every key and value
+    checked as far as they can be before the first question."""
     from stagewatch import yamlio
+    from stagewatch.interview_keys import check_answers
 
     doc = yamlio.load(path)
     data = doc.data
+    within: list[str] = []
     if isinstance(data, dict) and "draft_version" in data:
+        within = ["answers"]
         answers = data.get("answers") or {}
         if not isinstance(answers, dict):
             raise StagewatchError("a draft's 'answers' is a mapping of question keys to answers", file=path,
@@ -47,6 +52,8 @@ def load_answers(path: str) -> dict[str, Any]:
         if not isinstance(key, str):
             raise StagewatchError(f"question key {key!r} is not text", file=path,
                                   expected="keys as written in a saved draft, such as pipeline.name")
+    data["lines"] = {key: doc.line_of([*within, key]) for key in data["answers"]}
+    check_answers(data["answers"], path, data["lines"])
     return data
 
 
@@ -68,31 +75,38 @@ def command(args: argparse.Namespace) -> int:
     from stagewatch import interview
 
     known: dict[str, Any] = {}
+    lines: dict[str, int | None] = {}
     output = args.output
     existing_plan = args.plan
     if args.resume:
         draft = load_answers(args.resume)
         known.update(draft["answers"])
+        lines.update(draft["lines"])
         output = output or _from_draft(draft.get("output"), "output", args.resume)
         existing_plan = existing_plan or _from_draft(draft.get("plan"), "plan", args.resume)
     if args.answers:
-        known.update(load_answers(args.answers)["answers"])
+        answers = load_answers(args.answers)
+        known.update(answers["answers"])
+        lines.update(answers["lines"])
     output = output or existing_plan or "plan.yaml"
     interactive = not args.answers
     if interactive and not interview.has_terminal():
         raise StagewatchError("the interview needs a terminal; without one, replay answers with "
                               "`stagewatch interview --answers FILE`, or write a pipeline description and run "
                               "`stagewatch propose PIPELINE.yaml -o PLAN.yaml`")
-    session = interview.Session(known, interactive=interactive)
+    session = interview.Session(known, interactive=interactive, source=args.answers or args.resume or "<answers>",
+                                lines=lines)
+    if args.resume:
+        session.recap()
     draft_path = Path(args.resume) if args.resume else Path(output).with_name(Path(output).stem + ".draft.yaml")
     try:
-        lines = interview.run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
+        said = interview.run(session, output, existing_plan, inputs=[p for p in (args.answers, args.resume) if p])
     except (interview.Interrupted, KeyboardInterrupt):  # at a prompt or while the plan is being composed
         save_draft(draft_path, session, output, existing_plan)
         print(f"\nstopped; your answers are saved in {draft_path}\n"
               f"continue with: stagewatch interview --resume {draft_path}", file=sys.stderr)
         return EXIT_INTERRUPTED
-    for line in lines:
+    for line in said:
         print(line)
     if args.resume and draft_path.exists():
         draft_path.unlink()

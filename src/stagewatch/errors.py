@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from stagewatch.escape import terminal
+from stagewatch.wording import cap
 
 # Exit codes, documented in the README.
 EXIT_OK = 0
@@ -41,4 +42,4 @@ class StagewatchError(Exception):
             where = f"{self.file}:{self.line}: " if self.line else f"{self.file}: "
         tail = f" (expected: {self.expected})" if self.expected else ""
         # Messages quote what the user wrote: escape codes and bidi overrides are shown, not obeyed.
-        return terminal(f"{where}{self.message}{tail}")
+        return terminal(cap(f"{where}{self.message}{tail}"))

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from stagewatch import wording
 from stagewatch.errors import StagewatchError
 from stagewatch.escape import terminal
 from stagewatch.plan import all_metrics
@@ -13,9 +14,9 @@ def find_metric(plan: dict[str, Any], metric_id: str, path: str) -> dict[str, An
     metrics = {m["id"]: m for m in all_metrics(plan) + plan.get("retired_metrics", [])}
     if metric_id in metrics:
         return metrics[metric_id]
-    close = sorted(m for m in metrics if metric_id.split(".")[-1] in m)[:5]
+    close = wording.closest(metric_id, metrics, n=5)
     hint = ("did you mean " + ", ".join(close) + "?") if close else "an id such as " + next(iter(metrics), "?")
-    raise StagewatchError(f"no metric '{metric_id}' in this plan", file=path, expected=hint)
+    raise StagewatchError(f"no metric {wording.quote(metric_id)} in this plan", file=path, expected=hint)
 
 
 def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:

@@ -9,41 +9,22 @@ a resumed session are the same thing: answers looked up before anything is asked
 from __future__ import annotations
 
 import sys
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
-from stagewatch import spec, yamlio
+from stagewatch import spec, wording, yamlio
 from stagewatch.errors import StagewatchError
 from stagewatch.graph import PipelineGraph
-from stagewatch.lint import lint_document
 from stagewatch.plan import all_metrics, compose, dump, load_plan
 from stagewatch.safewrite import Snapshot, resolve_target
 from stagewatch.interview_answers import (FIELD_TYPES, _duration, _fields_text, _name_validator, _number,  # noqa: F401
                                           _optional_number, _parse_fields, _positive)
-
-KINDS = ["learned", "rule-based", "source"]
-MODALITIES = ["tabular", "image", "video", "audio", "text", "events", "timeseries"]
-OUTPUTS = ["class", "attribute", "score", "value", "ranking", "gate", "segments", "text", "records"]
-SERVING = ["online", "batch", "device"]
-CHANGE_RATES = ["minutes", "hours", "days", "months"]
-LABELS = ["delayed", "immediate", "none"]
-LAYERS = ("software", "input", "output")
-STRUCTURED = ("tabular", "events", "timeseries")
+from stagewatch.interview_keys import (CHANGE_RATES, KINDS, LABELS, LAYERS, MODALITIES, OUTPUTS,  # noqa: F401
+                                       CONFIRM, PIPELINE, REVISE, SERVING, STAGE, WHICH, Question, check_known,
+                                       form_of, listed)
+from stagewatch.interview_stage import STRUCTURED, ask_stage  # noqa: F401
 
 Answers = dict[str, Any]
-
-
-@dataclass
-class Question:
-    key: str
-    text: str
-    help: str
-    kind: str = "text"  # text | select | checkbox | confirm
-    choices: list[str] | None = None
-    default: Any = None
-    validate: Callable[[Any], str | None] | None = None
-    convert: Callable[[str], Any] | None = None
 
 
 class Interrupted(Exception):
@@ -100,58 +81,82 @@ def has_terminal() -> bool:
 
 
 class Session:
-    """Asks questions in order, taking answers already known (draft, answers file) instead of prompting."""
+    """Asks questions in order, taking answers already known (draft, answers file) instead of prompting.
 
-    def __init__(self, known: Answers | None = None, interactive: bool = True, out: Callable[[str], None] = print):
+    Without a terminal (``interactive=False``) a refused answer does not stop the interview: the problem is kept,
+    the question takes its default, and :meth:`finish` reports every problem at once, before anything is written.
+    At a terminal, a refused answer from a draft is said and asked again.
+    """
+
+    def __init__(self, known: Answers | None = None, interactive: bool = True, out: Callable[[str], None] = print,
+                 source: str = "<answers>", lines: dict[str, int | None] | None = None):
         self.known = dict(known or {})
         self.answers: Answers = {}
         self.interactive = interactive
         self.out = out
         self.asked: set[str] = set()
+        self.source = source
+        self.lines = lines or {}
+        self.problems: list[tuple[int | None, str]] = []
 
     def ask(self, question: Question) -> Any:
         self.asked.add(question.key)
         if question.key in self.known:
-            value = _known_answer(question, self.known[question.key])
-            if question.validate is not None:
-                problem = question.validate(value)
-                if problem:
-                    raise StagewatchError(f"answer to '{question.key}' ({question.text}): {problem}",
-                                          expected=question.help)
+            try:
+                value = check_known(question, self.known[question.key])
+            except StagewatchError as exc:
+                if self.interactive:
+                    self.out(f"  the saved answer is refused: {exc}; asking again")
+                    return self._prompt(question)
+                self.problems.append((self.lines.get(question.key), str(exc)))
+                return self._default(question)
         elif not self.interactive:
-            if question.default is None and question.kind == "text":
-                raise StagewatchError(f"no answer for '{question.key}' ({question.text}) and no default",
-                                      expected=f"'{question.key}: ...' in the answers file")
-            value = question.default
+            value = self._default(question)
         else:
-            self.out(f"  why: {question.help}" if question.help else "")
-            value = prompt(question)
+            return self._prompt(question)
         self.answers[question.key] = value
         return value
+
+    def _prompt(self, question: Question) -> Any:
+        self.out(f"  why: {question.help}" if question.help else "")
+        value = prompt(question)
+        self.answers[question.key] = value
+        return value
+
+    def _default(self, question: Question) -> Any:
+        if question.default is None and question.kind == "text":
+            self.problems.append((self.lines.get(question.key), f"no answer for '{question.key}' ({question.text}) "
+                                  "and no default"))
+            raise listed(self.problems, self.source)
+        self.answers[question.key] = question.default
+        return question.default
 
     def unused(self) -> list[str]:
         return sorted(k for k in self.known if k not in self.asked)
 
+    def finish(self) -> None:
+        """Every refused answer and every key no question asked, in one error; nothing is written then."""
+        problems = list(self.problems)
+        for key in self.unused():
+            hint = wording.did_you_mean(key, self.asked, n=1) if form_of(key) else ""
+            problems.append((self.lines.get(key), f"no question asked '{key}': the answers before it lead past it"
+                             + hint if form_of(key) else f"no question has the key '{key}'"))
+        if problems:
+            raise listed(problems, self.source)
 
-def _known_answer(question: Question, value: Any) -> Any:
-    """An answer from a file or a draft, held to the same form the prompt would have produced."""
-    def bad(expected: str) -> StagewatchError:
-        return StagewatchError(f"answer to '{question.key}' ({question.text}): {value!r} is not allowed",
-                               expected=expected)
+    def recap(self) -> None:
+        """The answers given so far (on resume), so the person knows where they stand."""
+        if not self.known:
+            return
+        self.out(f"answers so far ({len(self.known)}):")
+        for key, value in self.known.items():
+            self.out(f"  {key}: {wording.cap(_shown(value), 100)}")
 
-    if question.kind == "select" and value not in (question.choices or []):
-        raise bad("one of " + ", ".join(map(str, question.choices or [])))
-    if question.kind == "confirm" and not isinstance(value, bool):
-        raise bad("true or false")
-    if question.kind == "checkbox" and not (isinstance(value, list) and all(v in (question.choices or [])
-                                                                             for v in value)):
-        raise bad("a list among " + ", ".join(map(str, question.choices or [])))
-    if question.kind == "text" and question.convert and isinstance(value, str):
-        try:
-            value = question.convert(value)
-        except ValueError as exc:
-            raise bad(str(exc)) from None
-    return value
+
+def _shown(value: Any) -> str:
+    if isinstance(value, list):
+        return ", ".join(_fields_text([v]) if isinstance(v, dict) and "type" in v else str(v) for v in value)
+    return "yes" if value is True else "no" if value is False else str(value)
 
 
 # --- the questions --------------------------------------------------------------------------------------------
@@ -159,126 +164,23 @@ def _known_answer(question: Question, value: Any) -> Any:
 
 def ask_pipeline(s: Session, current: dict[str, Any] | None = None) -> dict[str, Any]:
     cur = current or {}
-    name = s.ask(Question("pipeline.name", "Pipeline name", "Used in every alert and file name; lower case.",
-                          default=cur.get("pipeline", "my-pipeline"), validate=_name_validator(set())))
-    context = s.ask(Question("pipeline.context", "Who produces the data?",
-                             "Businesses and machines change their data within hours; a large consumer "
-                             "population within days. This sets how fast windows must react.", "select",
-                             ["business", "consumer"], default=cur.get("context", "business")))
-    budget = s.ask(Question("pipeline.false_alarms_per_week", "False pages per week you can live with",
-                            "Split over all paging checks; each check's threshold is set so that noise alone "
-                            "stays within its share.", default=cur.get("false_alarms_per_week", 1),
-                            validate=_positive, convert=_number))
-    owner = s.ask(Question("pipeline.owner", "Team that owns the pipeline (for alert routing)",
-                           "Alerts carry it as the owner label; Alertmanager routes on it.",
-                           default=cur.get("owner", "ml-team")))
+    name = s.ask(PIPELINE["name"].question("pipeline.name", "Pipeline name", "Used in every alert and file name; "
+                                           "lower case.", default=cur.get("pipeline", "my-pipeline")))
+    context = s.ask(PIPELINE["context"].question(
+        "pipeline.context", "Who produces the data?", "Businesses and machines change their data within hours; a "
+        "large consumer population within days. This sets how fast windows must react.",
+        default=cur.get("context", "business")))
+    budget = s.ask(PIPELINE["false_alarms_per_week"].question(
+        "pipeline.false_alarms_per_week", "False pages per week you can live with", "Split over all paging checks; "
+        "each check's threshold is set so that noise alone stays within its share.",
+        default=cur.get("false_alarms_per_week", 1)))
+    owner = s.ask(PIPELINE["owner"].question("pipeline.owner", "Team that owns the pipeline (for alert routing)",
+                                             "Alerts carry it as the owner label; Alertmanager routes on it.",
+                                             default=cur.get("owner", "ml-team")))
     out = {"pipeline": name, "context": context, "false_alarms_per_week": budget}
     if owner:
         out["owner"] = owner
     return out
-
-
-def _default_output(kind: str) -> str:
-    return {"learned": "class", "rule-based": "gate", "source": "records"}[kind]
-
-
-def ask_stage(s: Session, index: int, total: int | None, head: dict[str, Any], earlier: list[dict[str, Any]],
-              current: dict[str, Any] | None = None, prefix: str | None = None) -> dict[str, Any]:
-    """Questions for one stage. A typical stage takes 7 questions when the defaults are accepted."""
-    cur = current or {}
-    key = prefix or f"stages.{index}"
-    s.out(f"-- stage {index + 1} of {total} --" if total else f"-- stage {index + 1} --")
-    taken = {st["id"] for st in earlier}
-    previous = earlier[-1] if earlier else {}
-    stage: dict[str, Any] = {}
-    stage["id"] = s.ask(Question(f"{key}.id", "Stage id", "Short name used in metric ids, e.g. frame_gate.",
-                                 default=cur.get("id", f"stage_{index + 1}"), validate=_name_validator(taken)))
-    stage["kind"] = s.ask(Question(f"{key}.kind", "What kind of stage is it?",
-                                   "learned: a trained model; rule-based: fixed logic such as a gate or a "
-                                   "filter; source: where data enters (sensor, feed, log).", "select", KINDS,
-                                   default=cur.get("kind", "source" if not earlier else "learned")))
-    stage["modality"] = s.ask(Question(f"{key}.modality", "What does it take in?",
-                                       "The modality of its input decides the input metrics (brightness for "
-                                       "images, length for text ...).", "select", MODALITIES,
-                                       default=cur.get("modality", previous.get("modality", "tabular"))))
-    stage["output"] = s.ask(Question(f"{key}.output", "What does it put out?",
-                                     "gate: passes on, drops or clips its input; attribute: a category that may be "
-                                     "unknown; the output kind decides the output metrics.", "select", OUTPUTS,
-                                     default=cur.get("output", _default_output(stage["kind"]))))
-    if earlier:
-        names = [st["id"] for st in earlier]
-        stage["upstream"] = s.ask(Question(
-            f"{key}.upstream", "Which stages feed it? (space to pick, enter to confirm)",
-            "Each hand-off gets the same check on both sides, so a shift can be placed before or after it.",
-            "checkbox", names, default=cur.get("upstream", [names[-1]] if stage["kind"] != "source" else [])))
-    else:
-        stage["upstream"] = []
-    stage["volume_per_hour"] = s.ask(Question(
-        f"{key}.volume_per_hour", "Items per hour at a typical hour",
-        "Sets how many samples a window holds, hence how short a window can be and still be trusted.",
-        default=cur.get("volume_per_hour", previous.get("volume_per_hour", 1000)), validate=_positive,
-        convert=_number))
-    if stage["modality"] in STRUCTURED:
-        fields = s.ask(Question(
-            f"{key}.inputs", "Input fields to watch, as name:type, comma separated (blank for none)",
-            "Each field gets its own drift, missing-share and range checks; types: " + ", ".join(FIELD_TYPES)
-            + ". Ranges and categories can be added in the YAML later.",
-            default=_fields_text(cur.get("inputs", [])), convert=_parse_fields))
-        if fields:
-            stage["inputs"] = fields
-    serving = cur.get("serving", previous.get("serving", "online"))
-    change_rate = cur.get("change_rate", spec.DEFAULT_CHANGE_RATE[head["context"]])
-    labels = cur.get("labels", "delayed" if stage["kind"] == "learned" else "none")
-    label_delay = cur.get("label_delay", "1d")
-    summary = f"serving {serving}, data changes within {change_rate}"
-    if stage["kind"] == "learned":
-        summary += f", labels {labels}" + (f" after {label_delay}" if labels == "delayed" else "")
-    if cur.get("latency_slo_ms"):
-        summary += f", latency SLO {cur['latency_slo_ms']:g} ms"
-    keep = s.ask(Question(f"{key}.keep_defaults", f"Keep the usual settings ({summary})?",
-                          "Say no to set serving, change rate, latency SLO and labels yourself.", "confirm",
-                          default=True))
-    latency = cur.get("latency_slo_ms")
-    if not keep:
-        serving = s.ask(Question(f"{key}.serving", "How is it served?",
-                                 "online: answers requests; batch: runs on a schedule; device: runs on users' or "
-                                 "machines' devices. Decides the software metrics.", "select", SERVING,
-                                 default=serving))
-        change_rate = s.ask(Question(f"{key}.change_rate", "How fast can its input change?",
-                                     "A retuned machine or new supplier changes data in minutes; a large user base "
-                                     "over months. The window must be shorter than this.", "select", CHANGE_RATES,
-                                     default=change_rate))
-        if serving == "online":
-            latency = s.ask(Question(f"{key}.latency_slo_ms", "Latency SLO in ms (blank for none)",
-                                     "With an SLO you get burn-rate alerts on slow requests.",
-                                     default=latency if latency is not None else "", convert=_optional_number,
-                                     validate=lambda v: None if v is None else _positive(v)))
-        if stage["kind"] == "learned":
-            labels = s.ask(Question(f"{key}.labels", "Do its predictions get ground-truth labels?",
-                                    "With labels the plan watches quality itself; without, a proxy.", "select",
-                                    LABELS, default=labels))
-            if labels == "delayed":
-                label_delay = s.ask(Question(f"{key}.label_delay", "How long until labels arrive? (e.g. 3d)",
-                                             "Quality windows are evaluated this long after they close.",
-                                             default=label_delay, validate=_duration))
-    stage["serving"] = serving
-    stage["change_rate"] = change_rate
-    if serving == "online" and latency:
-        stage["latency_slo_ms"] = latency
-    if stage["kind"] == "learned":
-        stage["labels"] = labels
-        if labels == "delayed":
-            stage["label_delay"] = label_delay
-    for extra in ("description", "owner", "labelled_share", "slo_target", "slo_period", "run_every", "outputs"):
-        if extra in cur:
-            stage[extra] = cur[extra]
-    if "inputs" in stage:  # keep what the YAML said about a field (range, categories ...) when its type stays
-        before = {f["name"]: f for f in cur.get("inputs", [])}
-        stage["inputs"] = [{**before[f["name"]], **f} if f["name"] in before and before[f["name"]]["type"] == f["type"]
-                           else f for f in stage["inputs"]]
-    if stage["kind"] == "source":
-        stage.pop("labels", None)
-    return stage
 
 
 def run(session: Session, output: str, existing_plan: str | None = None, inputs: Sequence[str] = ()) -> list[str]:
@@ -287,7 +189,7 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
     ``inputs`` are files the command read (answers, a draft): never written over. The plan at ``output`` is
     replaced only if nobody changed it since the interview read it.
     """
-    from stagewatch import interview_review  # it builds on the questions above
+    from stagewatch import interview_gaps, interview_review  # they build on the questions above
 
     plan_path = Path(output)
     sources = [str(p) for p in (*inputs, existing_plan) if p]
@@ -310,17 +212,18 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
     if existing:
         stages = [dict(st) for st in current_stages]
         while True:
-            action = session.ask(Question(f"revise.{len(touched)}", "What do you want to change?",
-                                          "Add a stage, revise one, or finish and merge into the plan.", "select",
-                                          ["add a stage", "revise a stage", "finish"], default="finish"))
+            action = session.ask(REVISE.question(f"revise.{len(touched)}", "What do you want to change?",
+                                                 "Add a stage, revise one, or finish and merge into the plan.",
+                                                 default="finish"))
             if action == "finish":
                 break
             if action == "add a stage":
                 stage = ask_stage(session, len(stages), None, head, stages, prefix=f"revise.{len(touched)}.stage")
                 stages.append(stage)
             else:
-                target = session.ask(Question(f"revise.{len(touched)}.which", "Which stage?", "", "select",
-                                              [st["id"] for st in stages], default=stages[0]["id"]))
+                ids = [st["id"] for st in stages]
+                target = session.ask(WHICH.question(f"revise.{len(touched)}.which", "Which stage?", "",
+                                                    default=ids[0], choices=ids))
                 i = [st["id"] for st in stages].index(target)
                 others = [st for st in stages if st["id"] != target]
                 stage = ask_stage(session, i, len(stages), head, others[:i], current=stages[i],
@@ -331,64 +234,31 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
                 stages[i] = stage
             touched.append(stage["id"])
     else:
-        count = session.ask(Question("pipeline.stage_count", "How many stages? (0 if you want to add them one by one)",
-                                     "Counting sources, gates, models and rule steps.", default=5,
-                                     validate=lambda v: None if isinstance(v, int) and 0 <= v <= 200 else
-                                     "a whole number from 0 to 200",
-                                     convert=lambda t: int(t) if str(t).strip().isdigit() else -1))
+        count = session.ask(PIPELINE["stage_count"].question(
+            "pipeline.stage_count", "How many stages? (0 if you want to add them one by one)",
+            "Counting sources, gates, models and rule steps.", default=5))
         i = 0
         while True:
             stages.append(ask_stage(session, i, count or None, head, stages))
             i += 1
             if count and i >= count:
                 break
-            if not count and not session.ask(Question(f"stages.{i}.more", "Add another stage?",
-                                                      "Stop when every stage is in.", "confirm", default=True)):
+            if not count and not session.ask(CONFIRM.question(f"stages.{i}.more", "Add another stage?",
+                                                              "Stop when every stage is in.", default=True)):
                 break
         touched = [st["id"] for st in stages]
     description = {**head, "stages": stages}
     pipeline = _pipeline(description)
     plan = compose(pipeline, existing=existing)
-    interview_review.review(session, plan, touched)
+    interview_review.review(session, plan, touched, lambda p: compose(pipeline, existing=p))
     plan = compose(pipeline, existing=plan)
-    undecided = [m["id"] for m in all_metrics(plan) if m["status"] == "stale"
-                 and m.get("previous_status", "proposed") == "proposed" and not m.get("note")]
-    if undecided:
-        session.out(f"{len(undecided)} metric(s) no longer apply and nobody decided on them: " + ", ".join(undecided))
-        if session.ask(Question("gaps.drop_stale", "Remove them from the plan?",
-                                "They came from rules that no longer match your stages; nothing a person wrote "
-                                "is in them.", "confirm", default=True)):
-            _drop(plan, set(undecided))
-    for m in [m for m in all_metrics(plan) if m["status"] == "stale" and m["id"] not in undecided]:
-        if session.ask(Question(f"gaps.stale.{m['id']}", f"{m['id']} no longer applies (it was "
-                                f"{m.get('previous_status', 'proposed')}). Remove it? (no: keep it as a manual metric)",
-                                "Its rule no longer matches the stage; a manual metric stays until you delete it.",
-                                "confirm", default=True)):
-            _drop(plan, {m["id"]})
-        else:
-            m["source"] = "manual"
-            m["status"] = m.pop("previous_status", "proposed")
-            m.pop("review", None)
-            m.pop("fingerprint", None)
-    findings = lint_document(yamlio.Document(str(plan_path), plan, None))
-    if findings:
-        session.out("coverage gaps left:")
-        for f in findings:
-            session.out(f"  [{f.code}] {f.message}")
-        if session.ask(Question("gaps.fix", "Reopen the rejected metrics behind these gaps for review?",
-                                "They go back to 'proposed'; you can reject them again in code review with a "
-                                "note.", "confirm", default=True)):
-            interview_review.restore_gaps(plan, findings)
-            plan = compose(pipeline, existing=plan)
-    unused = session.unused()
-    if unused:
-        raise StagewatchError("the answers include keys no question asked: " + ", ".join(unused[:8]),
-                              expected="keys as written in a saved draft")
-    description_path = plan_path.with_name(plan_path.stem + ".pipeline.yaml")
     if plan_path.exists() and not existing_plan:
         existing_on_disk, disk_doc = load_plan(str(plan_path))
         expected = disk_doc.snapshot()
         plan = compose(pipeline, existing=_merge_statuses(plan, existing_on_disk))
+    plan = interview_gaps.close(session, plan, pipeline, str(plan_path))
+    session.finish()
+    description_path = plan_path.with_name(plan_path.stem + ".pipeline.yaml")
     text = yamlio.dump(description)
     kept = []
     resolve_target(description_path, sources)
@@ -404,14 +274,6 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
     decided = sum(1 for m in all_metrics(plan) if m["status"] != "proposed")
     return [f"wrote {plan_path}: {n} metrics, {decided} decided in this interview",
             f"wrote {description_path}: the pipeline description (use it with `stagewatch propose`)", *kept]
-
-
-def _drop(plan: dict[str, Any], ids: set[str]) -> None:
-    for stage in plan["stages"]:
-        stage["metrics"] = [m for m in stage["metrics"] if m["id"] not in ids]
-    for key in ("pipeline_metrics", "retired_metrics"):
-        if key in plan:
-            plan[key] = [m for m in plan[key] if m["id"] not in ids]
 
 
 def _merge_statuses(fresh: dict[str, Any], on_disk: dict[str, Any]) -> dict[str, Any]:

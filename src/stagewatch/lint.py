@@ -32,6 +32,10 @@ class Finding:
 def lint_file(path: str) -> list[Finding]:
     """All findings for the plan at ``path``; raises StagewatchError only when the file cannot be read as YAML."""
     doc = yamlio.load(path)
+    if isinstance(doc.data, dict) and "plan_version" not in doc.data and "stages" in doc.data:
+        raise StagewatchError("this is a pipeline description, not a plan: lint checks the plan that "
+                              f"`stagewatch propose {path} -o PLAN.yaml` writes", file=path, line=1,
+                              expected="a plan (a file with plan_version, written by `stagewatch propose`)")
     if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
         raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
                               expected="a file written by `stagewatch propose`")
@@ -64,7 +68,7 @@ def _located(doc: yamlio.Document) -> Iterator[tuple[tuple[Any, ...], dict[str, 
         yield ("pipeline_metrics", j), metric, "pipeline"
 
 
-def _ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
+def ordered(warn: float, critical: float, direction: str, statistic: str) -> bool:
     """Warn must be reached before critical. Drift statistics are sizes of change (larger is worse in every
     direction); only fixed-limit levels read as levels, where 'below' means lower is worse."""
     if statistic != "level" or direction == "above":
@@ -105,7 +109,7 @@ def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
                           f"metric '{mid}': reference {metric['reference']} is shorter than window "
                           f"{metric['window']}", mid)
         warn, critical = metric.get("warn"), metric.get("critical")
-        if warn is not None and critical is not None and not _ordered(warn, critical, metric["direction"],
+        if warn is not None and critical is not None and not ordered(warn, critical, metric["direction"],
                                                                                   metric["statistic"]):
             yield Finding(path, doc.line_of((*where, "warn")), "threshold-order",
                           f"metric '{mid}': warn {warn:g} must come before critical {critical:g} for direction "

@@ -142,6 +142,11 @@ def from_document(doc: yamlio.Document) -> Pipeline:
     if not isinstance(doc.data, dict):
         raise StagewatchError("a pipeline description is a mapping with 'pipeline' and 'stages'", file=doc.path,
                               line=1, expected="pipeline: NAME, stages: [...]")
+    if "plan_version" in doc.data:
+        raise StagewatchError("this is a plan, not a pipeline description: give the pipeline description (the "
+                              "interview writes it beside the plan as PLAN.pipeline.yaml)", file=doc.path,
+                              line=doc.line_of(["plan_version"]),
+                              expected="a pipeline description: pipeline: NAME, stages: [...]")
     yamlio.validate(doc, "pipeline")
     data = doc.data
     context = data.get("context", "consumer")

@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 import yaml
 
+from stagewatch import wording
 from stagewatch.errors import StagewatchError
 from stagewatch.safewrite import Snapshot, safe_write
 
@@ -161,9 +162,7 @@ def parse(text: str, path: str) -> Document:
     except yaml.MarkedYAMLError as exc:
         mark = exc.problem_mark or exc.context_mark
         line = mark.line + 1 if mark else None
-        raise StagewatchError(
-            f"this is not valid YAML: {exc.problem or exc}", file=path, line=line, expected="well-formed YAML"
-        ) from None
+        raise StagewatchError(syntax_problem(exc), file=path, line=line, expected="well-formed YAML") from None
     except yaml.YAMLError as exc:
         raise StagewatchError(f"this is not valid YAML: {exc}", file=path) from None
     except RecursionError:  # the pure-Python parser, without libyaml, on very deep nesting
@@ -195,28 +194,58 @@ def load(path: str | os.PathLike[str]) -> Document:
     return doc
 
 
+def syntax_problem(exc: yaml.MarkedYAMLError) -> str:
+    """A YAML syntax error in words: where the parser stopped and, for an unclosed construct, where it opened."""
+    problem = f"this is not valid YAML: {exc.problem or exc}"
+    if exc.problem_mark is not None:
+        problem += f" (the parser stopped at line {exc.problem_mark.line + 1}, column {exc.problem_mark.column + 1})"
+    if exc.context and exc.context_mark is not None and (
+            exc.problem_mark is None or exc.context_mark.line != exc.problem_mark.line):
+        construct = exc.context.removeprefix("while ").removeprefix("parsing ").removeprefix("scanning ")
+        construct = construct.removeprefix("a ").removeprefix("an ")
+        problem += f", in the {construct} that starts on line {exc.context_mark.line + 1}"
+    return problem
+
+
+def unknown_keys(error: "jsonschema.ValidationError") -> list[str]:
+    """The keys an ``additionalProperties`` error refuses, in file order."""
+    if not isinstance(error.instance, dict):
+        return []
+    allowed = error.schema.get("properties") or {}
+    return [str(k) for k in error.instance if k not in allowed]
+
+
 def describe_error(error: "jsonschema.ValidationError") -> tuple[str, str | None]:
     """A schema violation in words: (where and what, what was expected)."""
     where = ".".join(str(k) for k in error.absolute_path) or "top level"
+    where = wording.cap(where, wording.MAX_QUOTE)
     validator = error.validator
     if validator == "enum":
-        return f"{where}: {error.instance!r} is not allowed", "one of " + ", ".join(map(str, error.validator_value))
+        return (f"{where}: {wording.quote(error.instance)} is not allowed"
+                + wording.did_you_mean(str(error.instance), map(str, error.validator_value)),
+                "one of " + ", ".join(map(str, error.validator_value)))
     if validator == "required":
         return f"{where}: {error.message}", None
     if validator == "additionalProperties":
         allowed = sorted((error.schema.get("properties") or {}).keys())
-        return f"{where}: {error.message}", ("keys among " + ", ".join(allowed)) if allowed else None
+        extra = unknown_keys(error)
+        if len(extra) == 1:
+            what = f"unknown key {wording.quote(extra[0])}" + wording.did_you_mean(extra[0], allowed)
+        else:
+            shown = [wording.quote(k) + wording.did_you_mean(k, allowed) for k in extra[:wording.MAX_LISTED]]
+            what = f"{len(extra):,} unknown keys: " + wording.some(shown, total=len(extra))
+        return f"{where}: {what}", ("keys among " + ", ".join(allowed)) if allowed else None
     if validator == "format" and error.validator_value == "bounded-duration":
         from stagewatch.durations import MAX_TEXT
 
-        return f"{where}: {error.instance!r} is longer than any window or delay stagewatch plans", f"at most {MAX_TEXT}"
+        return f"{where}: {wording.quote(error.instance)} is longer than any window or delay stagewatch plans", f"at most {MAX_TEXT}"
     if validator == "pattern":
-        return f"{where}: {error.instance!r} has the wrong form", error.schema.get("description") or (
+        return f"{where}: {wording.quote(error.instance)} has the wrong form", error.schema.get("description") or (
             f"text matching {error.validator_value}"
         )
     if validator == "type":
-        return f"{where}: {error.instance!r} is the wrong type", f"{error.validator_value}"
-    return f"{where}: {error.message}", error.schema.get("description")
+        return f"{where}: {wording.quote(error.instance)} is the wrong type", f"{error.validator_value}"
+    return f"{where}: {wording.cap(error.message, 300)}", error.schema.get("description")
 
 
 def schema_errors(data: Any, kind: str) -> list[Any]:
@@ -248,24 +277,27 @@ def _pointer(path: Any) -> list[Any]:
 
 
 def validate(doc: Document, kind: str) -> None:
-    """Raise one StagewatchError for the most relevant violation of schema ``kind``, with its YAML line."""
-    errors = schema_errors(doc.data, kind)
+    """Raise one StagewatchError for the first violation of schema ``kind`` in the file, with its YAML line, and
+    list the others (each with its line, up to a limit)."""
+    errors = schema_errors(doc.data, kind)[: 10 * wording.MAX_LISTED]
     if not errors:
         return
     import jsonschema
 
-    best = jsonschema.exceptions.best_match(errors)
-    # Descend into oneOf/anyOf to the most specific reason.
-    while best.context:
-        best = jsonschema.exceptions.best_match(best.context)
-    message, expected = describe_error(best)
-    where = list(best.absolute_path)
-    if best.validator == "additionalProperties" and isinstance(best.instance, dict):
-        extra = [k for k in best.instance if k not in (best.schema.get("properties") or {})]
-        if extra:
-            where.append(extra[0])
-    more = f" ({len(errors) - 1} more problem{'s' if len(errors) > 2 else ''} after this one)" if len(errors) > 1 else ""
-    raise StagewatchError(message + more, file=doc.path, line=doc.line_of(where), expected=expected)
+    problems = []  # (line, message, expected), in file order
+    for error in errors:
+        while error.context:  # descend into oneOf/anyOf to the most specific reason
+            error = jsonschema.exceptions.best_match(error.context)
+        message, expected = describe_error(error)
+        where = list(error.absolute_path)
+        extra = unknown_keys(error) if error.validator == "additionalProperties" else []
+        problem = (doc.line_of(where + extra[:1]), message, expected)
+        if problem not in problems:
+            problems.append(problem)
+    problems.sort(key=lambda p: p[0] or 0)
+    (line, message, expected), rest = problems[0], problems[1:]
+    message += wording.problem_list([f"{doc.path}:{n}: {m}" if n else f"{doc.path}: {m}" for n, m, _ in rest])
+    raise StagewatchError(message, file=doc.path, line=line, expected=expected)
 
 
 class _Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]

@@ -1,0 +1,119 @@
+"""Messages that do not make the user hunt: each against a fixture that produces it."""
+
+from __future__ import annotations
+
+import pytest
+
+from conftest import SMALL
+from stagewatch.cli import main
+
+STAGE = """
+pipeline: hub
+context: business
+stages:
+  - id: scanner
+    kind: source
+    modality: tabular
+    output: records
+    serving: online
+    volume_per_hour: 100
+"""
+
+
+def _err(capsys, argv: list[str], code: int = 2) -> str:
+    assert main(argv) == code
+    return capsys.readouterr().err
+
+
+def test_an_unclosed_bracket_names_where_it_opened_and_where_the_parser_stopped(write, capsys):
+    path = write("pipeline.yaml", """
+        pipeline: hub
+        stages: [
+          {id: a, kind: source, modality: image, output: records, serving: online, volume_per_hour: 10},
+          {id: b, kind: learned
+        context: business
+        owner: x
+        """)
+    err = _err(capsys, ["propose", str(path)])
+    # PyYAML marks the problem at line 5 (the ':' after 'context') inside the flow mapping opened on line 4
+    assert f"{path}:5:" in err and "stopped at line 5" in err and "starts on line 4" in err, err
+
+
+def test_an_unclosed_quote_names_its_line(write, capsys):
+    path = write("pipeline.yaml", 'pipeline: "hub\ncontext: business\nstages: []\n')
+    err = _err(capsys, ["propose", str(path)])
+    assert "starts on line 1" in err and "stopped at line 4" in err, err
+
+
+@pytest.mark.parametrize("typo, key, line", [("volme_per_hour", "volume_per_hour", 10),
+                                             ("upstreams", "upstream", 10)])
+def test_a_typo_d_key_gets_did_you_mean(write, capsys, typo, key, line):
+    path = write("pipeline.yaml", STAGE.replace("volume_per_hour: 100", f"volume_per_hour: 100\n    {typo}: 1"))
+    err = _err(capsys, ["propose", str(path)])
+    assert f"{path}:{line}: stages.0: unknown key '{typo}' (did you mean '{key}'?)" in err, err
+
+
+def test_a_misspelt_choice_gets_did_you_mean(write, capsys):
+    path = write("pipeline.yaml", STAGE.replace("kind: source", "kind: sorce"))
+    err = _err(capsys, ["propose", str(path)])
+    assert f"{path}:5:" in err and "'sorce' is not allowed (did you mean 'source'?)" in err, err
+
+
+def test_every_problem_is_listed_with_its_line_up_to_a_limit(write, capsys):
+    stages = "".join(f"  - id: s{i}\n    kind: source\n    modality: tabular\n    output: records\n    serving: "
+                     f"online\n    volume_per_hour: 100\n    colour{i}: blue\n" for i in range(14))
+    path = write("pipeline.yaml", "pipeline: hub\nstages:\n" + stages)
+    err = _err(capsys, ["propose", str(path)])
+    lines = [9 + 7 * i for i in range(14)]  # each colour key
+    assert f"{path}:{lines[0]}: stages.0: unknown key 'colour0'" in err, err
+    for i in range(1, 11):
+        assert f"also {path}:{lines[i]}: stages.{i}: unknown key 'colour{i}'" in err, err
+    assert "stages.11: unknown key" not in err and "and 3 more problems" in err, err
+
+
+def test_a_file_of_many_unknown_keys_gives_a_short_message(write, capsys):
+    keys = "".join(f"unknown_key_number_{i}: {'x' * 40}\n" for i in range(30_000))  # about 2 MB
+    path = write("pipeline.yaml", "pipeline: hub\nstages: []\n" + keys)
+    err = _err(capsys, ["propose", str(path)])
+    assert len(err) < 5000, len(err)
+    assert "30,002 unknown keys" not in err and "30,000 unknown keys" in err and "and 29,990 more" in err
+
+
+def test_a_long_value_is_quoted_short(write, capsys):
+    path = write("pipeline.yaml", STAGE.replace("kind: source", "kind: " + "z" * 100_000))
+    err = _err(capsys, ["propose", str(path)])
+    assert len(err) < 2000 and "(100,002 characters)" in err, err
+
+
+def test_a_field_that_clashes_with_a_catalog_rule_points_to_the_user_s_line(write, capsys):
+    path = write("pipeline.yaml", STAGE.replace("output: records", "output: value")
+                 + "    outputs:\n      - {name: reading, type: numeric}\n      - {name: value, type: numeric}\n")
+    err = _err(capsys, ["propose", str(path)])
+    assert err.startswith(f"stagewatch: {path}:12: stage 'scanner': the output field 'value'"), err
+    assert "output.yaml" in err and "in the catalog" in err
+
+
+def test_propose_given_a_plan_says_which_file_it_expected(write, tmp_path, capsys):
+    description = write("pipeline.yaml", SMALL)
+    plan = tmp_path / "plan.yaml"
+    assert main(["propose", str(description), "-o", str(plan)]) == 0
+    err = _err(capsys, ["propose", str(plan)])
+    assert "this is a plan, not a pipeline description: give the pipeline description" in err, err
+    assert len(err.splitlines()) == 1
+
+
+def test_lint_given_a_description_says_which_file_it_expected(write, capsys):
+    description = write("pipeline.yaml", SMALL)
+    err = _err(capsys, ["lint", str(description)])
+    assert "this is a pipeline description, not a plan" in err and f"stagewatch propose {description}" in err
+
+
+def test_explain_suggests_the_closest_metric_ids(write, tmp_path, capsys):
+    from stagewatch.demo import DEMO
+
+    plan = tmp_path / "plan.yaml"
+    assert main(["propose", str(DEMO), "-o", str(plan)]) == 0
+    err = _err(capsys, ["explain", str(plan), "load_cell.input.wieght_g_drift"])
+    assert "did you mean load_cell.input.weight_g_drift," in err, err
+    err = _err(capsys, ["explain", str(plan), "grade_asigner.input.weight_g_drift"])
+    assert "did you mean grade_assigner.input.weight_g_drift," in err, err
