@@ -14,7 +14,7 @@ $(BIN)/python:
 $(STAMP): $(BIN)/python $(SOURCES)
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --upgrade pip
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --force-reinstall --no-deps .
-	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test]"
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test,spark]"
 	touch $(STAMP)
 
 install: $(STAMP)

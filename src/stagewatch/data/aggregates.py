@@ -37,10 +37,13 @@ def lit(value: Any) -> exp.Expression:
     return exp.Literal.string(str(value))
 
 
-def number(name: str, transform: str | None = None) -> exp.Expression:
-    """A column as a DOUBLE (NULL where it is not a number); ``length``: its text length."""
+def number(name: str, transform: str | None = None, numeric: bool = False) -> exp.Expression:
+    """A column as a DOUBLE (NULL where it is not a number); ``length``: its text length. A column known to hold
+    numbers is a plain CAST (Snowflake's TRY_CAST takes only text); any other a TRY_CAST."""
     if transform == "length":
         return exp.Length(this=exp.cast(col(name), "VARCHAR"))
+    if numeric:
+        return exp.cast(col(name), "DOUBLE")
     return exp.TryCast(this=col(name), to=exp.DataType.build("DOUBLE"))
 
 
@@ -49,8 +52,28 @@ def text(name: str) -> exp.Expression:
 
 
 def finite(value: Expr) -> Expr:
+    """``v - v = 0``: true for finite numbers only. NaN - NaN and inf - inf are NaN, which equals nothing under
+    IEEE comparison and under the "NaN is largest" order (DuckDB, Spark, PostgreSQL, Snowflake); NULL is NULL."""
     return exp.and_(value.is_(exp.null()).not_(),
-                    exp.func("isfinite", value.copy()))
+                    exp.EQ(this=exp.paren(exp.Sub(this=value.copy(), expression=value.copy())),
+                           expression=exp.Literal.number(0)))
+
+
+def outside(value: Expr, low: float, high: float) -> Expr:
+    """A number that is not in [low, high]: below, above, or NaN (NaN is in no interval in any dialect)."""
+    inside = exp.and_(exp.GTE(this=value.copy(), expression=lit(float(low))),
+                      exp.LTE(this=value.copy(), expression=lit(float(high))))
+    return exp.and_(value.copy().is_(exp.null()).not_(), exp.not_(exp.paren(inside)))
+
+
+FLAG_TRUE = ("true", "t", "1", "yes", "y")
+
+
+def flag_set(name: str) -> Expr:
+    """A flag is set when its text, trimmed and in lower case, is one of :data:`FLAG_TRUE` (booleans and 0/1
+    integers print as such in every dialect)."""
+    value = exp.Lower(this=exp.Trim(this=text(name)))
+    return exp.func("coalesce", exp.In(this=value, expressions=[lit(v) for v in FLAG_TRUE]), exp.false())
 
 
 def count_if(condition: Expr) -> Expr:
@@ -95,10 +118,12 @@ def select(view: str, aggregates: Sequence[Aggregate], *, bucket: Expr | None = 
     query = exp.select(*items).from_(exp.to_table(view))
     if where is not None:
         query = query.where(where)
-    if bucket is not None:
-        query = query.group_by(exp.column("bucket"))
+    if bucket is not None:  # by position: a log column named "bucket" must not take the alias's place
+        query = query.group_by(exp.Literal.number(1))
     return query
 
 
 def sql(expression: Expr, dialect: str = DIALECT) -> str:
-    return expression.sql(dialect=dialect)
+    from stagewatch.data.dialects import render
+
+    return render(expression, dialect)

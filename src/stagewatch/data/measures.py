@@ -64,7 +64,7 @@ class Measure:
 
     def value_expr(self) -> exp.Expression:
         assert self.column is not None
-        return ag.number(self.column, self.reads.get("transform"))
+        return ag.number(self.column, self.reads.get("transform"), self.column in self.numeric_columns)
 
     def is_categorical(self) -> bool:
         return self.statistic == "chi_square" or self.condition == "unseen"
@@ -109,11 +109,7 @@ class Measure:
             return ag.col(self.column).is_(exp.null()), None  # type: ignore[arg-type]
         if c == "out_of_range":
             lo, hi = self.reads["range"]
-            v = self.value_expr()
-            return exp.and_(v.copy().is_(exp.null()).not_(),
-                            exp.or_(exp.LT(this=v.copy(), expression=ag.lit(float(lo))),
-                                    exp.GT(this=v.copy(), expression=ag.lit(float(hi))),
-                                    exp.func("isnan", v.copy()))), None
+            return ag.outside(self.value_expr(), lo, hi), None
         if c == "unknown":
             return exp.EQ(this=ag.text(self.column), expression=ag.lit(self.reads.get("unknown_value", "unknown"))), None  # type: ignore[arg-type]
         if c == "unseen":
@@ -125,19 +121,18 @@ class Measure:
             v = ag.text(self.column)  # type: ignore[arg-type]
             return exp.or_(v.copy().is_(exp.null()), exp.EQ(this=exp.Trim(this=v.copy()), expression=ag.lit(""))), None
         if c == "set":
-            return exp.func("coalesce", exp.TryCast(this=ag.col(self.column), to=exp.DataType.build("BOOLEAN")),  # type: ignore[arg-type]
-                            exp.false()), None
+            return ag.flag_set(self.column), None  # type: ignore[arg-type]
         if c == "nonfinite":
             if self.column not in self.numeric_columns:
                 return exp.false(), None
             v = self.value_expr()
-            return exp.and_(v.copy().is_(exp.null()).not_(), exp.not_(exp.func("isfinite", v.copy()))), None
+            return exp.and_(v.copy().is_(exp.null()).not_(), exp.not_(ag.finite(v.copy()))), None
         if c == "invalid":
             ranges = self.reads.get("ranges", {})
             bad = []
             for name in self.reads.get("columns", []):
                 if name in ranges:
-                    v = ag.number(name)
+                    v = ag.number(name, None, name in self.numeric_columns)
                     lo, hi = ranges[name]
                     bad.append(exp.or_(exp.not_(ag.finite(v)), exp.LT(this=v.copy(), expression=ag.lit(float(lo))),
                                        exp.GT(this=v.copy(), expression=ag.lit(float(hi)))))
@@ -148,7 +143,8 @@ class Measure:
             a, b = self.column, self.reads["other_column"]
             both = exp.and_(ag.col(a).is_(exp.null()).not_(), ag.col(b).is_(exp.null()).not_())  # type: ignore[arg-type]
             if a in self.numeric_columns:  # a score against a label on the same scale: wrong side of 0.5
-                differ: Expr = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a), expression=ag.number(b)))),  # type: ignore[arg-type]
+                differ: Expr = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a, None, True),  # type: ignore[arg-type]
+                                                                            expression=ag.number(b, None, b in self.numeric_columns)))),
                                                  expression=ag.lit(0.5))
             else:
                 differ = exp.NEQ(this=ag.text(a), expression=ag.text(b))  # type: ignore[arg-type]
