@@ -19,9 +19,10 @@ from stagewatch.data.engines import Location
 from stagewatch.errors import StagewatchError
 
 INSTALL = "pip install 'stagewatch[spark]'"
-# Spark's type names (simpleString, upper case) to the names the time-column check and the scan know
-_TIME_TYPES = {"TIMESTAMP": "TIMESTAMP WITH TIME ZONE", "TIMESTAMP_NTZ": "TIMESTAMP", "DATE": "DATE",
-               "STRING": "VARCHAR"}
+# Spark's type names (simpleString, upper case) to DuckDB's, so a baseline records the same types whichever
+# engine made it
+_TYPES = {"TIMESTAMP": "TIMESTAMP WITH TIME ZONE", "TIMESTAMP_NTZ": "TIMESTAMP", "STRING": "VARCHAR",
+          "INT": "INTEGER", "TINYINT": "TINYINT", "SMALLINT": "SMALLINT", "BIGINT": "BIGINT"}
 
 
 def session() -> Any:
@@ -80,9 +81,8 @@ class SparkEngine:
 
     def open(self, stage: str, where: Location, time_column: str, index: int) -> sources.Source:
         frame, paths, shown = self._read(stage, where)
-        columns = {f.name: f.dataType.simpleString().upper() for f in frame.schema.fields}
-        if time_column in columns and columns[time_column] in _TIME_TYPES:
-            columns[time_column] = _TIME_TYPES[columns[time_column]]
+        columns = {f.name: _TYPES.get(kind, kind) for f in frame.schema.fields
+                   for kind in [f.dataType.simpleString().upper()]}
         ts_type = sources.check_time_type(time_column, columns, shown)
         raw, view = f"stagewatch_log_{index}_raw", f"stagewatch_log_{index}"  # names are ours
         frame.createOrReplaceTempView(raw)
