@@ -19,7 +19,7 @@ $(STAMP): $(BIN)/python $(SOURCES)
 
 install: $(STAMP)
 
-# promtool, amtool and a Prometheus server for the export tests (Debian packages).
+# promtool, amtool, a Prometheus server and a Java runtime for the tests (Debian packages).
 tools:
 	@./.ci/install-tools
 

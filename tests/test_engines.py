@@ -273,3 +273,13 @@ def test_a_hostile_stage_or_table_name_stays_a_name_in_emitted_sql():
     [table] = list(statements[0].find_all(exp.Table))
     assert (table.db, table.name) == ("db", "t`; DROP TABLE x; --")
     assert isinstance(source, Source)
+
+
+def test_engine_spark_without_pyspark_says_how_to_install_it(checked, monkeypatch, capsys):
+    import sys
+
+    plan, paths, base, *_ = checked
+    monkeypatch.setitem(sys.modules, "pyspark", None)  # as if not installed: importing it raises ImportError
+    monkeypatch.setitem(sys.modules, "pyspark.sql", None)
+    assert main(["check", str(plan), "--baseline", str(base), *data_args(paths), "--engine", "spark"]) == 2
+    assert "pip install 'stagewatch[spark]'" in capsys.readouterr().err

@@ -46,6 +46,8 @@ def _epoch_us(stamp: Any, dialect: str) -> exp.Expression:
 def _rewrite(dialect: str, node: exp.Expression) -> exp.Expression:
     if isinstance(node, exp.Anonymous) and str(node.this).upper() == EPOCH_US:
         return _epoch_us(node.expressions[0], dialect)
+    if isinstance(node, exp.TryCast) and dialect == "spark":  # TRY_CAST, not CAST: ANSI mode would fail on text
+        node.set("safe", True)
     if isinstance(node, exp.Quantile) and dialect == "duckdb":  # exact and interpolated, as Spark's PERCENTILE
         return exp.Anonymous(this="quantile_cont", expressions=[node.this, node.args["quantile"]])
     return node

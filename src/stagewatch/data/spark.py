@@ -3,8 +3,8 @@
 The session is the user's own (``SparkSession.builder.getOrCreate()``: whatever ``spark.master`` and
 configuration ``spark-submit``, ``PYSPARK_SUBMIT_ARGS`` or ``spark-defaults.conf`` give). Our queries run in a
 session of their own on the same context (``newSession``), with the time zone set to UTC (timestamps without a
-zone are read as UTC, as on DuckDB) and ANSI mode off (text that is not a number casts to NULL, as TRY_CAST does
-on DuckDB), so the user's session settings are left as they were.
+zone are read as UTC, as on DuckDB), so the user's session settings are left as they were. Text read as a number
+goes through TRY_CAST, so ANSI mode (on by default since Spark 4) turns bad text into NULL, as on DuckDB.
 """
 
 from __future__ import annotations
@@ -48,7 +48,6 @@ class SparkEngine:
     def __init__(self, spark: Any = None) -> None:
         self.spark = (spark or session()).newSession()
         self.spark.conf.set("spark.sql.session.timeZone", "UTC")
-        self.spark.conf.set("spark.sql.ansi.enabled", "false")
         self.on_progress = None
 
     def _read(self, stage: str, where: Location) -> tuple[Any, list[str], str]:
