@@ -36,8 +36,10 @@ check: install
 	$(BIN)/mypy src/stagewatch
 
 bench: install
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[bench]"
 	$(BIN)/python benchmarks/bench_plan.py
 	$(BIN)/python benchmarks/bench_replay.py
+	$(BIN)/python benchmarks/bench_scan.py
 
 clean:
 	rm -rf $(VENV) stagewatch-demo build dist .pytest_cache

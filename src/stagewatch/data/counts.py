@@ -75,9 +75,12 @@ class Recorder:
         self.engine.define(view, query)
 
     def rows(self, source: sources.Source, query: Any) -> list[tuple[Any, ...]]:
+        from stagewatch.data.scan import pushdown
+
         found = self.engine.rows(source, query)
         key = query_id(source.stage, query)
         self.results[key] = {"query": key, "stage": source.stage, "columns": output_names(query),
+                             "sql": render(pushdown(query, source)),
                              "rows": [[_plain(v) for v in row] for row in found]}
         return found
 
