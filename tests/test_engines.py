@@ -82,10 +82,10 @@ def test_emitted_sql_parses_in_its_dialect_and_reads_the_named_tables(checked, t
     statements = [s for s in sqlglot.parse(text, read=dialect) if s is not None]  # sqlglot's own parser
     assert len(statements) == text.count("\n-- query ") >= 4
     for statement in statements:
-        assert isinstance(statement, exp.Select)
+        assert isinstance(statement, exp.Union)  # the query, and a row that names it when the result is empty
         tables = {(t.db, t.name) for t in statement.find_all(exp.Table)}
         assert tables <= {("logs", "probe"), ("logs", "spoilage_model")} and tables
-        assert statement.expressions[-1].alias_or_name == "stagewatch_query"
+        assert statement.expression.expressions[-1].alias_or_name == "stagewatch_query"
 
 
 def _run_in_duckdb(text: str, paths: dict[str, str], out_dir) -> list[str]:

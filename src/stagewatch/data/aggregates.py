@@ -9,7 +9,7 @@ edge, bin i holds edge[i-1] <= v < edge[i], the last bin holds values at or abov
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Any, Sequence
 
 from sqlglot import exp
@@ -21,8 +21,17 @@ Expr = Any
 
 @dataclass(frozen=True)
 class Aggregate:
+    """A count (or sum) with a stable key. A bin or category count also names its ``index``: an expression that
+    gives each row its bin number (NULL: no bin) and this count's ``slot`` in it, so that the scan can count all
+    bins of a column in one ``GROUP BY`` instead of one ``SUM(CASE ...)`` per bin; both mean the same rows."""
+
     key: str
     expr: Expr
+    index: Expr | None = None
+    slot: int = 0
+
+    def renamed(self, key: str) -> "Aggregate":
+        return replace(self, key=key)
 
 
 def col(name: str) -> exp.Column:
@@ -98,6 +107,40 @@ def bin_conditions(value: Expr, edges: Sequence[float]) -> list[Expr]:
             parts.append(exp.LT(this=value.copy(), expression=lit(float(high))))
         out.append(exp.and_(*parts))
     return out
+
+
+def bin_index(value: Expr, edges: Sequence[float]) -> Expr:
+    """The bin number of a finite value, by binary search over ``edges``: the number of edges at or below it
+    (so bin i holds edge[i-1] <= v < edge[i], as :func:`bin_conditions`); NULL for NULL, NaN and infinity."""
+
+    def search(lo: int, hi: int) -> Expr:  # the answer lies in lo .. hi
+        if lo == hi:
+            return exp.Literal.number(lo)
+        mid = (lo + hi) // 2
+        return exp.Case(ifs=[exp.If(this=exp.LT(this=value.copy(), expression=lit(float(edges[mid]))),
+                                    true=search(lo, mid))], default=search(mid + 1, hi))
+
+    return exp.Case(ifs=[exp.If(this=finite(value), true=search(0, len(edges)))])
+
+
+def bins(value: Expr, edges: Sequence[float], prefix: str = "bin") -> list[Aggregate]:
+    """One count per bin of ``edges``, counted together through :func:`bin_index`."""
+    index = bin_index(value, edges)
+    return [Aggregate(f"{prefix}{i}", count_if(c), index, i) for i, c in enumerate(bin_conditions(value, edges))]
+
+
+def category_index(value: Expr, categories: Sequence[str]) -> Expr:
+    """The slot of a value among ``categories``, the last slot for any other non-null value, NULL for NULL."""
+    ifs = [exp.If(this=exp.EQ(this=value.copy(), expression=lit(c)), true=exp.Literal.number(i))
+           for i, c in enumerate(categories)]
+    ifs.append(exp.If(this=value.copy().is_(exp.null()).not_(), true=exp.Literal.number(len(categories))))
+    return exp.Case(ifs=ifs)
+
+
+def categories(value: Expr, known: Sequence[str], prefix: str = "cat") -> list[Aggregate]:
+    """One count per known category and one for any other non-null value, counted together."""
+    index = category_index(value, known)
+    return [Aggregate(f"{prefix}{i}", count_if(c), index, i) for i, c in enumerate(category_conditions(value, known))]
 
 
 def category_conditions(value: Expr, categories: Sequence[str]) -> list[Expr]:

@@ -108,7 +108,7 @@ def _calibrate_stage(engine: Any, source: sources.Source, metrics: list[dict[str
             p = {}
         ref = m.reference(p)
         references[metric_id] = ref
-        aggregates += [a.__class__(f"{metric_id}#{a.key}", a.expr) for a in m.aggregates(ref)]
+        aggregates += [a.renamed(f"{metric_id}#{a.key}") for a in m.aggregates(ref)]
     counts = scan.run(engine, source, aggregates, start=lo, end=hi).get(-1, {})
     checks: dict[str, Any] = {}
     for metric_id, m in measures.items():

@@ -139,7 +139,7 @@ class Runnable:
         return "all" if self.seconds is None else durations.format(self.seconds)
 
     def aggregates(self) -> list[Any]:
-        return [a.__class__(f"{self.metric['id']}#{a.key}", a.expr) for a in self.measure.aggregates(self.ref)]
+        return [a.renamed(f"{self.metric['id']}#{a.key}") for a in self.measure.aggregates(self.ref)]
 
 
 def prepare(source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],

@@ -202,6 +202,8 @@ class CountsEngine:
         if key in self.rows_by_query:
             out = []
             for path, line, row in self.rows_by_query[key]:
+                if all(row.get(n) is None for n in names):
+                    continue  # the marker row every emitted query adds
                 missing = [n for n in names if n not in row]
                 if missing:
                     raise StagewatchError(f"the row has no column {', '.join(missing)}", file=path, line=line,
@@ -256,7 +258,8 @@ class EmitEngine:
         """Every query collected, in the dialect, each reading its stage's table with UTC seconds added."""
         out = [f"-- stagewatch: {len(self.queries)} queries ({self.dialect}). Run each; export every result "
                f"with its header (CSV) or as JSON rows, and pass the files to --counts.",
-               "-- Times without a zone are read in the session's time zone: set it to UTC."]
+               "-- Times without a zone are read in the session's time zone: set it to UTC.",
+               "-- Each query's last row is NULL but for stagewatch_query: keep it (an empty result needs it)."]
         for key, stage, query, source in self.queries:
             ts_type = source.columns.get(source.time_column, "TIMESTAMP")
             inner = sources.with_seconds(table_name(source.table or ""), source.time_column, ts_type)
@@ -265,6 +268,11 @@ class EmitEngine:
             tree.set("expressions", [*tree.expressions, exp.alias_(exp.Literal.string(key), QUERY_COLUMN)])
             tree = tree.transform(lambda n: exp.Subquery(this=inner.copy(), alias=exp.TableAlias(
                 this=exp.to_identifier("log"))) if isinstance(n, exp.Table) else n)
+            # one more row, NULL but for the query's identity, so that an empty result still says which query
+            # it answers
+            marker = exp.select(*[exp.alias_(exp.null(), name) for name in output_names(query)],
+                                exp.alias_(exp.Literal.string(key), QUERY_COLUMN))
+            tree = exp.union(exp.select(exp.Star()).from_(tree.subquery("result")), marker, distinct=False)
             safe = re.sub(r"[^A-Za-z0-9_.-]", "_", stage)
             out.append(f"\n-- query {key}, stage {safe}\n{render(tree, self.dialect)};")
         return "\n".join(out) + "\n"

@@ -159,11 +159,9 @@ class Measure:
 
     def aggregates(self, ref: dict[str, Any]) -> list[ag.Aggregate]:
         if self.statistic in ("psi", "ks"):
-            return [ag.Aggregate(f"bin{i}", ag.count_if(c))
-                    for i, c in enumerate(ag.bin_conditions(self.value_expr(), ref["edges"]))]
+            return ag.bins(self.value_expr(), ref["edges"])
         if self.statistic == "chi_square":
-            return [ag.Aggregate(f"cat{i}", ag.count_if(c))
-                    for i, c in enumerate(ag.category_conditions(ag.text(self.column), ref["categories"]))]  # type: ignore[arg-type]
+            return ag.categories(ag.text(self.column), ref["categories"])  # type: ignore[arg-type]
         if self.statistic == "mean":
             v = self.value_expr()
             fin = ag.finite(v)

@@ -61,7 +61,7 @@ def pushdown(query: Any, source: Source) -> Any:
     """The query with a looser filter on the stored time column added, for an engine that reads files: the
     exact filter is on UTC seconds computed from it, which no file reader can use to skip row groups."""
     start, end = query.meta.get("period", (None, None))
-    parts = []
+    parts: list[Expr] = []
     if start is not None and (low := _stored(source, start, -2.0)) is not None:
         parts.append(exp.GTE(this=ag.col(source.time_column), expression=low))
     if end is not None and (high := _stored(source, end, 2.0)) is not None:
@@ -76,19 +76,49 @@ def bucket_of(end: float, step: float) -> Expr:
 
 def run(engine: Any, source: Source, aggregates: Sequence[ag.Aggregate], *, start: float | None = None,
         end: float | None = None, step: float | None = None) -> dict[int, Counts]:
-    """Counts per bucket (bucket -1 when ``step`` is None: the whole period as one group)."""
+    """Counts per bucket (bucket -1 when ``step`` is None: the whole period as one group); every bucket that has
+    rows carries every key (0 where nothing was counted).
+
+    Plain aggregates run in one ``SELECT`` per stage; bin and category counts run as one ``GROUP BY bucket,
+    index`` per column (:class:`~stagewatch.data.aggregates.Aggregate`): a query with one ``SUM(CASE ...)`` per
+    bin costs an expression per bin per row, while the index costs a binary search per row."""
     if not aggregates:
         return {}
     bucket = None
     if step is not None:
         assert end is not None
         bucket = bucket_of(end, step)
-    query = _within(ag.select(source.view, aggregates, bucket=bucket, where=period(start, end)), start, end)
-    out: dict[int, Counts] = {}
-    for row in engine.rows(source, query):
-        key = int(row[0]) if bucket is not None else -1
-        values = row[1:] if bucket is not None else row
-        out[key] = {a.key: float(v or 0) for a, v in zip(aggregates, values)}
+    where = period(start, end)
+    plain = [a for a in aggregates if a.index is None]
+    groups: dict[str, list[ag.Aggregate]] = {}
+    for a in aggregates:
+        if a.index is not None:
+            groups.setdefault(ag.sql(a.index), []).append(a)
+    out: dict[int, Counts] = {} if step is not None else {-1: {}}
+    if plain:
+        query = _within(ag.select(source.view, plain, bucket=bucket, where=where), start, end)
+        for row in engine.rows(source, query):
+            key = int(row[0]) if bucket is not None else -1
+            values = row[1:] if bucket is not None else row
+            out.setdefault(key, {}).update({a.key: float(v or 0) for a, v in zip(plain, values)})
+    for members in groups.values():
+        index: Expr = members[0].index
+        items = ([exp.alias_(bucket.copy(), "bucket")] if bucket is not None else []) + [
+            exp.alias_(index.copy(), "slot"), exp.alias_(ag.rows(), "n")]
+        query = exp.select(*items).from_(exp.to_table(source.view)).where(
+            exp.and_(where.copy(), index.copy().is_(exp.null()).not_()))  # type: ignore[union-attr]
+        query = _within(query.group_by(*[exp.Literal.number(i + 1) for i in range(len(items) - 1)]), start, end)
+        by_slot = {a.slot: a.key for a in members}
+        for row in engine.rows(source, query):
+            key = int(row[0]) if bucket is not None else -1
+            slot, n = row[-2], row[-1]
+            name = by_slot.get(int(slot))
+            if name is not None:
+                out.setdefault(key, {})[name] = float(n or 0)
+    keys = [a.key for a in aggregates]
+    for counts in out.values():
+        for k in keys:
+            counts.setdefault(k, 0.0)
     return out
 
 
