@@ -283,3 +283,20 @@ def test_engine_spark_without_pyspark_says_how_to_install_it(checked, monkeypatc
     monkeypatch.setitem(sys.modules, "pyspark.sql", None)
     assert main(["check", str(plan), "--baseline", str(base), *data_args(paths), "--engine", "spark"]) == 2
     assert "pip install 'stagewatch[spark]'" in capsys.readouterr().err
+
+
+def test_a_long_duckdb_scan_reports_how_far_it_got(monkeypatch):
+    from stagewatch.data import engines
+
+    monkeypatch.setattr(engines, "PROGRESS_AFTER_S", 0.05)
+    engine = DuckDBEngine()
+    engine.con.execute("CREATE VIEW big AS SELECT range AS x, CAST(range AS DOUBLE) AS __stagewatch_ts "
+                       "FROM range(150000000)")
+    source = Source(stage="s", pattern="big", paths=[], view="big", columns={"x": "BIGINT"}, time_column="x")
+    seen: list[float] = []
+    engine.on_progress = seen.append
+    odd = ag.Aggregate("odd", ag.count_if(exp.EQ(this=exp.Mod(this=ag.col("x"), expression=ag.lit(7)),
+                                                   expression=ag.lit(1))))
+    counts = scan.run(engine, source, [odd])[-1]
+    assert counts["odd"] == len(range(1, 150000000, 7))  # Python's own count of x % 7 == 1
+    assert seen and all(0 <= s <= 100 for s in seen) and seen == sorted(seen)

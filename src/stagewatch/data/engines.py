@@ -51,6 +51,7 @@ class DuckDBEngine:
     def __init__(self) -> None:
         self.con = sources.connect()
         self.on_progress: Callable[[float], None] | None = None
+        self._progress_on = False
 
     def open(self, stage: str, where: Location, time_column: str, index: int) -> sources.Source:
         if where.kind != "data":
@@ -68,6 +69,10 @@ class DuckDBEngine:
         text = render(pushdown(query, source), self.dialect)
         if self.on_progress is None:
             return self.con.execute(text).fetchall()
+        if not self._progress_on:  # DuckDB measures progress only with its progress bar on (printing it off)
+            self.con.execute("SET enable_progress_bar = true")
+            self.con.execute("SET enable_progress_bar_print = false")
+            self._progress_on = True
         done = threading.Event()
         report = self.on_progress
 

@@ -96,7 +96,15 @@ class SparkEngine:
     def rows(self, source: sources.Source, query: Any) -> list[tuple[Any, ...]]:
         from stagewatch.data.scan import pushdown
 
-        return [tuple(row) for row in self.spark.sql(render(pushdown(query, source), self.dialect)).collect()]
+        text = render(pushdown(query, source), self.dialect)
+        try:
+            return [tuple(row) for row in self.spark.sql(text).collect()]
+        except Exception as exc:  # noqa: BLE001 - Spark's errors (analysis, out of memory, a lost JVM) are plain
+            first = next((line for line in str(exc).splitlines() if line.strip()), type(exc).__name__)
+            raise StagewatchError(f"Spark could not run the scan of {source.stage}: {first[:300]}",
+                                  file=source.pattern, expected="a running Spark with the memory the scan needs "
+                                  "(calibrate's exact quantiles hold the reference's distinct values: raise "
+                                  "spark.executor.memory or calibrate a shorter period)") from None
 
 
 def _remote(pattern: str) -> bool:
