@@ -186,4 +186,5 @@ def connect() -> Any:
 
     con = duckdb.connect(":memory:")
     con.execute("SET TimeZone = 'UTC'")
+    con.execute("SET enable_progress_bar_print = false")  # DuckDB would draw on standard output, where results go
     return con
