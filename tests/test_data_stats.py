@@ -137,3 +137,15 @@ def test_identifiers_and_literals_are_quoted_by_sqlglot():
     sql = ag.sql(ag.select("log_0", [ag.Aggregate("a", ag.count_if(
         ag.category_conditions(ag.text(hostile), ["it's"])[0]))]))
     assert '"x""; DROP TABLE t; --"' in sql and "'it''s'" in sql
+
+
+def test_two_checks_binning_one_column_on_the_same_edges_both_get_the_counts(tmp_path):
+    rng = np.random.default_rng(6)
+    x = rng.normal(0, 1, 2000)
+    con, source = _source(tmp_path, {"x": x})
+    edges = {"edges": [-1.0, 0.0, 1.0]}
+    one = [a.renamed("one#" + a.key) for a in Measure(_metric("psi", {"column": "x"}, bins=4), {"x"}).aggregates(edges)]
+    two = [a.renamed("two#" + a.key) for a in Measure(_metric("psi", {"column": "x"}, bins=4), {"x"}).aggregates(edges)]
+    counts = scan.run(con, source, one + two)[-1]
+    expected = np.histogram(x, [-np.inf, -1.0, 0.0, 1.0, np.inf])[0].tolist()  # numpy's histogram
+    assert [counts[f"one#bin{i}"] for i in range(4)] == expected == [counts[f"two#bin{i}"] for i in range(4)]

@@ -108,12 +108,13 @@ def run(engine: Any, source: Source, aggregates: Sequence[ag.Aggregate], *, star
         query = exp.select(*items).from_(exp.to_table(source.view)).where(
             exp.and_(where.copy(), index.copy().is_(exp.null()).not_()))  # type: ignore[union-attr]
         query = _within(query.group_by(*[exp.Literal.number(i + 1) for i in range(len(items) - 1)]), start, end)
-        by_slot = {a.slot: a.key for a in members}
+        by_slot: dict[int, list[str]] = {}
+        for a in members:  # two checks may bin one column on the same edges: both get the counts
+            by_slot.setdefault(a.slot, []).append(a.key)
         for row in engine.rows(source, query):
             key = int(row[0]) if bucket is not None else -1
             slot, n = row[-2], row[-1]
-            name = by_slot.get(int(slot))
-            if name is not None:
+            for name in by_slot.get(int(slot), []):
                 out.setdefault(key, {})[name] = float(n or 0)
     keys = [a.key for a in aggregates]
     for counts in out.values():
