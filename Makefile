@@ -14,12 +14,12 @@ $(BIN)/python:
 $(STAMP): $(BIN)/python $(SOURCES)
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --upgrade pip
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --force-reinstall --no-deps .
-	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test]"
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test,spark]"
 	touch $(STAMP)
 
 install: $(STAMP)
 
-# promtool, amtool and a Prometheus server for the export tests (Debian packages).
+# promtool, amtool, a Prometheus server and a Java runtime for the tests (Debian packages).
 tools:
 	@./.ci/install-tools
 
@@ -36,8 +36,10 @@ check: install
 	$(BIN)/mypy src/stagewatch
 
 bench: install
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[bench]"
 	$(BIN)/python benchmarks/bench_plan.py
 	$(BIN)/python benchmarks/bench_replay.py
+	$(BIN)/python benchmarks/bench_scan.py
 
 clean:
 	rm -rf $(VENV) stagewatch-demo build dist .pytest_cache

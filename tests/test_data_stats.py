@@ -12,22 +12,21 @@ from scipy import stats as st
 
 from stagewatch import binned
 from stagewatch.data import aggregates as ag
-from stagewatch.data import scan, sources
+from stagewatch.data import scan
+from stagewatch.data.engines import DuckDBEngine, Location
+from stagewatch.data.sources import Source
 from stagewatch.data.measures import Measure
 
 
-def _source(tmp_path, table: dict[str, np.ndarray]) -> tuple[object, sources.Source]:
-    import duckdb
-
-    con = sources.connect()
+def _source(tmp_path, table: dict[str, np.ndarray]) -> tuple[DuckDBEngine, Source]:
+    engine = DuckDBEngine()
     path = tmp_path / "log.parquet"
     frame = {"ts": np.arange(len(next(iter(table.values()))), dtype=float), **table}
-    con.register("frame", frame)
+    engine.con.register("frame", frame)
     cols = ", ".join(f'"{k}"' for k in table)
-    con.execute(f"COPY (SELECT to_timestamp(ts) AS timestamp, {cols} FROM frame) TO '{path}' (FORMAT parquet)")
-    con.unregister("frame")
-    assert isinstance(con, duckdb.DuckDBPyConnection)
-    return con, sources.open_source(con, "s", str(path), "timestamp", 0)
+    engine.con.execute(f"COPY (SELECT to_timestamp(ts) AS timestamp, {cols} FROM frame) TO '{path}' (FORMAT parquet)")
+    engine.con.unregister("frame")
+    return engine, engine.open("s", Location("data", str(path)), "timestamp", 0)
 
 
 def _counts(con, source, measure: Measure, ref: dict) -> dict[str, float]:
@@ -103,8 +102,8 @@ def test_shares_from_the_scan_equal_numpy_and_scipy_binomtest(tmp_path):
     path = tmp_path / "log.csv"
     path.write_text("timestamp,x\n" + "".join(f"2026-01-01T00:00:{i % 60:02d}Z,{t}\n"
                                                for i, t in enumerate(text)))
-    con = sources.connect()
-    source = sources.open_source(con, "s", str(path), "timestamp", 0)
+    con = DuckDBEngine()
+    source = con.open("s", Location("data", str(path)), "timestamp", 0)
     value = np.where(kind == "value", x, np.nan)
     out_of_range = int(np.sum((kind == "value") & ((x < 0) | (x > 100)))) + int(np.sum(kind == "nan")) \
         + int(np.sum(kind == "inf"))
@@ -138,3 +137,15 @@ def test_identifiers_and_literals_are_quoted_by_sqlglot():
     sql = ag.sql(ag.select("log_0", [ag.Aggregate("a", ag.count_if(
         ag.category_conditions(ag.text(hostile), ["it's"])[0]))]))
     assert '"x""; DROP TABLE t; --"' in sql and "'it''s'" in sql
+
+
+def test_two_checks_binning_one_column_on_the_same_edges_both_get_the_counts(tmp_path):
+    rng = np.random.default_rng(6)
+    x = rng.normal(0, 1, 2000)
+    con, source = _source(tmp_path, {"x": x})
+    edges = {"edges": [-1.0, 0.0, 1.0]}
+    one = [a.renamed("one#" + a.key) for a in Measure(_metric("psi", {"column": "x"}, bins=4), {"x"}).aggregates(edges)]
+    two = [a.renamed("two#" + a.key) for a in Measure(_metric("psi", {"column": "x"}, bins=4), {"x"}).aggregates(edges)]
+    counts = scan.run(con, source, one + two)[-1]
+    expected = np.histogram(x, [-np.inf, -1.0, 0.0, 1.0, np.inf])[0].tolist()  # numpy's histogram
+    assert [counts[f"one#bin{i}"] for i in range(4)] == expected == [counts[f"two#bin{i}"] for i in range(4)]

@@ -1,4 +1,5 @@
-"""The data commands' argument parsers and handlers: calibrate and check. Thin: options to keyword arguments."""
+"""The data commands' argument parsers and handlers: calibrate, check and replay. Thin: options to keyword
+arguments, and the choice of engine (``--engine``, ``--counts``, ``--emit-sql``)."""
 
 from __future__ import annotations
 
@@ -9,8 +10,9 @@ from typing import Any, Callable, Iterator
 
 
 @contextlib.contextmanager
-def _progress(total: int) -> Iterator[Callable[[str], None] | None]:
-    """A transient progress display on a terminal (none when stderr is not one, as in CI or a pipe)."""
+def _progress(total: int, engine: Any = None) -> Iterator[Callable[[str], None] | None]:
+    """A transient progress display on a terminal (none when stderr is not one, as in CI or a pipe): the stage
+    being scanned and, on a scan that takes more than a second, how far DuckDB got."""
     if not sys.stderr.isatty():
         yield None
         return
@@ -20,20 +22,75 @@ def _progress(total: int) -> Iterator[Callable[[str], None] | None]:
     with Progress(SpinnerColumn(), TextColumn("scanning {task.description}"), TimeElapsedColumn(),
                   console=Console(stderr=True), transient=True) as bar:
         task = bar.add_task("", total=total)
+        current = [""]
 
         def step(stage: str) -> None:
+            current[0] = stage
             bar.update(task, description=stage, advance=1)
 
-        yield step
+        def percent(share: float) -> None:
+            bar.update(task, description=f"{current[0]} ({share:.0f}% of this query)")
+
+        if engine is not None:
+            engine.on_progress = percent
+        try:
+            yield step
+        finally:
+            if engine is not None:
+                engine.on_progress = None
 
 
-def _inputs(args: argparse.Namespace, data: dict[str, str]) -> list[str]:
+def _engine(args: argparse.Namespace) -> tuple[Any, dict[str, Any]]:
+    """The engine the options ask for, and each stage's location."""
+    from stagewatch.data import engines
+    from stagewatch.data.sources import parse_data_args
+    from stagewatch.errors import StagewatchError
+
+    data = engines.locations(parse_data_args(args.data), parse_data_args(args.table, "--table"))
+    emit = getattr(args, "emit_sql", None)
+    if args.counts:
+        from stagewatch.data.counts import CountsEngine
+
+        if emit or args.save_counts:
+            raise StagewatchError("--counts reads counts; it cannot be combined with --emit-sql or --save-counts",
+                                  expected="one of them")
+        engine: Any = CountsEngine(args.counts)
+        if not data:
+            data = {stage: engines.Location("counts", "") for stage in engine.stages}
+        if not data:
+            raise StagewatchError("name the stages the counts are for", expected="--table STAGE=NAME for each "
+                                  "stage, as when the SQL was emitted")
+        return engine, data
+    if not data:
+        raise StagewatchError("no logs given", expected="--data STAGE=PATH or --table STAGE=NAME (repeat per "
+                              "stage), or --counts FILE")
+    if emit:
+        from stagewatch.data.counts import EmitEngine
+
+        return EmitEngine(emit), data
+    engine = engines.make(args.engine)
+    if args.save_counts:
+        from stagewatch.data.counts import Recorder
+
+        engine = Recorder(engine)
+    return engine, data
+
+
+def _save_counts(args: argparse.Namespace, engine: Any, inputs: list[str]) -> None:
+    if getattr(args, "save_counts", None):
+        engine.save(args.save_counts, inputs)
+        print(f"wrote {args.save_counts}: {len(engine.results)} query results", file=sys.stderr)
+
+
+def _inputs(args: argparse.Namespace, data: dict[str, Any]) -> list[str]:
     """Every file the command reads: outputs may never land on one of them."""
+    import glob
     import os
 
-    from stagewatch.data.sources import expand
-
-    files = [args.plan] + [p for pattern in data.values() for p in expand(pattern)]
+    files = [args.plan, *(args.counts or [])]
+    for where in data.values():
+        if where.kind == "data":
+            files += [p for p in glob.glob(where.text) if os.path.isfile(p)] or [where.text]
     baseline = getattr(args, "baseline", None)
     if baseline:
         files.append(os.path.join(baseline, "baseline.json"))
@@ -61,21 +118,24 @@ def _emit(text: str, output: str | None, inputs: list[str], what: str) -> None:
 
 def _calibrate(args: argparse.Namespace) -> int:
     from stagewatch.data.baseline import calibrate, load_baseline
-    from stagewatch.data.sources import parse_data_args
     from stagewatch.errors import EXIT_OK
 
     import os
 
-    data = parse_data_args(args.data)
-    _guard(os.path.join(args.output, "baseline.json"), _inputs(args, data))
-    with _progress(len(data)) as step:
+    engine, data = _engine(args)
+    inputs = _inputs(args, data)
+    _guard(os.path.join(args.output, "baseline.json"), inputs)
+    _guard(args.save_counts, inputs)
+    with _progress(len(data), engine) as step:
         lines = calibrate(args.plan, data, args.output, time_column=args.time_column, start=args.start,
-                          end=args.end, progress=step)
+                          end=args.end, progress=step, engine=engine)
     if args.thresholds:
         from stagewatch.data.baseline import add_thresholds
 
-        with _progress(len(data)) as step:
-            lines += add_thresholds(args.plan, args.output, data, time_column=args.time_column, progress=step)
+        with _progress(len(data), engine) as step:
+            lines += add_thresholds(args.plan, args.output, data, time_column=args.time_column, progress=step,
+                                    engine=engine)
+    _save_counts(args, engine, inputs)
     if args.format == "openmetrics":
         from stagewatch.data.report import reference_openmetrics
         from stagewatch.plan import load_plan
@@ -93,14 +153,22 @@ def _check(args: argparse.Namespace) -> int:
     from stagewatch import yamlio
     from stagewatch.data import report
     from stagewatch.data.check import exit_code, run_check
-    from stagewatch.data.sources import parse_data_args
+    from stagewatch.errors import EXIT_OK, StagewatchError
 
-    data = parse_data_args(args.data)
+    engine, data = _engine(args)
     inputs = _inputs(args, data)
     _guard(args.output, inputs)
-    with _progress(len(data)) as step:
+    _guard(args.save_counts, inputs)
+    if args.emit_sql and not args.at:
+        raise StagewatchError("--emit-sql needs --at: without the logs there is no latest timestamp",
+                              expected="--at 2026-03-14T06:00Z")
+    with _progress(len(data), engine) as step:
         result = run_check(args.plan, args.baseline, data, time_column=args.time_column, window=args.window,
-                           at=args.at, progress=step)
+                           at=args.at, progress=step, engine=engine)
+    if args.emit_sql:
+        _emit(engine.sql(), args.output, inputs, f"{len(engine.queries)} queries in {args.emit_sql} SQL")
+        return EXIT_OK
+    _save_counts(args, engine, inputs)
     text = None
     if args.format == "json":
         text = report.to_json(result)
@@ -125,20 +193,21 @@ def _replay(args: argparse.Namespace) -> int:
     from stagewatch import yamlio
     from stagewatch.data import replay_report
     from stagewatch.data.replay import exit_code, run_replay
-    from stagewatch.data.sources import parse_data_args
 
-    data = parse_data_args(args.data)
+    engine, data = _engine(args)
     inputs = _inputs(args, data)
     _guard(args.output, inputs)
+    _guard(args.save_counts, inputs)
     if args.inject:
         from stagewatch.data.inject import sizes
 
         changes = sizes(args.inject)
         if len(changes) > 1:
-            return _delay_table(args, data, changes, inputs)
-    with _progress(len(data)) as step:
+            return _delay_table(args, data, changes, inputs, engine)
+    with _progress(len(data), engine) as step:
         result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
-                            time_column=args.time_column, injection=args.inject, progress=step)
+                            time_column=args.time_column, injection=args.inject, progress=step, engine=engine)
+    _save_counts(args, engine, inputs)
     plan = result.plan
     if args.format == "table":
         if args.output:
@@ -156,7 +225,8 @@ def _replay(args: argparse.Namespace) -> int:
     return exit_code(result)
 
 
-def _delay_table(args: argparse.Namespace, data: dict[str, str], changes: list[str], inputs: list[str]) -> int:
+def _delay_table(args: argparse.Namespace, data: dict[str, Any], changes: list[str], inputs: list[str],
+                 engine: Any) -> int:
     """``--inject`` with several sizes: replay once per size and print the detection delay of each check."""
     from stagewatch.data import replay_report
     from stagewatch.data.replay import affected, run_replay
@@ -164,9 +234,9 @@ def _delay_table(args: argparse.Namespace, data: dict[str, str], changes: list[s
 
     rows = []
     for change in changes:
-        with _progress(len(data)) as step:
+        with _progress(len(data), engine) as step:
             result = run_replay(args.plan, args.baseline, data, start=args.start, end=args.end, cadence=args.cadence,
-                                time_column=args.time_column, injection=change, progress=step)
+                                time_column=args.time_column, injection=change, progress=step, engine=engine)
         rows.append((change, {c.id: c.detection_delay_s for c in affected(result, result.plan)}))
     text = replay_report.delay_table(rows, "json" if args.format == "json" else "markdown")
     _emit(text, args.output, inputs, "detection delay by change size")
@@ -204,6 +274,11 @@ def add_parsers(sub: Any) -> None:
                    help="html: one self-contained page with the pipeline marked and the distributions of every "
                    "alerting check")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
+    from stagewatch.data.dialects import DIALECTS
+
+    p.add_argument("--emit-sql", choices=DIALECTS, metavar="DIALECT",
+                   help="write the queries of this check in a warehouse's SQL (" + ", ".join(DIALECTS) + ") "
+                   "instead of running them; needs --table per stage and --at; feed the results back with --counts")
     p.set_defaults(func=_check)
 
     p = sub.add_parser("replay", help="how often the plan would have fired on your own history",
@@ -230,6 +305,17 @@ def add_parsers(sub: Any) -> None:
 
 
 def _data_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--data", action="append", required=True, metavar="STAGE=PATH",
+    p.add_argument("--data", action="append", metavar="STAGE=PATH",
                    help="a stage's log: a CSV, Parquet or JSON-lines file or a glob of them (repeat per stage)")
+    p.add_argument("--table", action="append", metavar="STAGE=NAME",
+                   help="a stage's log as a table (DB.TABLE) of the Spark catalog, or of the warehouse for "
+                   "--emit-sql (repeat per stage)")
     p.add_argument("--time-column", default="timestamp", metavar="NAME", help="the timestamp column (default: timestamp)")
+    p.add_argument("--engine", choices=("duckdb", "spark"), default="duckdb",
+                   help="where rows become counts: duckdb (embedded, default) or spark (the SparkSession your "
+                   "configuration or spark-submit gives; pip install 'stagewatch[spark]')")
+    p.add_argument("--counts", action="append", metavar="FILE",
+                   help="read the counts instead of the logs: a file written by --save-counts, or the results of "
+                   "emitted SQL (CSV or JSON rows; stagewatch schema counts); repeatable")
+    p.add_argument("--save-counts", metavar="FILE",
+                   help="also write every count the engine produced, for --counts later")

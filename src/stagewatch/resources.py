@@ -31,7 +31,7 @@ def schema(kind: str) -> dict[str, Any]:
     return json.loads((_PACKAGE / "schemas" / f"{kind}.schema.json").read_text(encoding="utf-8"))
 
 
-SCHEMA_KINDS = ("pipeline", "plan", "catalog", "checks", "check-result")
+SCHEMA_KINDS = ("pipeline", "plan", "catalog", "checks", "check-result", "counts")
 
 
 def _bounded_duration(value: object) -> bool:

@@ -64,15 +64,15 @@ def _rates(hours: dict[int, int], first_h: int, last_h: int) -> dict[str, Any]:
     return out
 
 
-def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], start: float | None,
+def _calibrate_stage(engine: Any, source: sources.Source, metrics: list[dict[str, Any]], start: float | None,
                      end: float | None) -> dict[str, Any]:
-    first, last, rows_all, bad_ts = scan.time_range(con, source)
+    first, last, rows_all, bad_ts = scan.time_range(engine, source)
     if rows_all and bad_ts == rows_all:
         raise StagewatchError(f"no value in column '{source.time_column}' reads as a time", file=source.pattern,
                               expected="ISO 8601 timestamps such as 2026-03-01T06:00:00Z")
     lo = start if start is not None else (first - 1 if first is not None else None)
     hi = end if end is not None else last
-    hours = scan.hourly(con, source, lo, hi)
+    hours = scan.hourly(engine, source, lo, hi)
     if not hours:
         raise StagewatchError("no rows in the reference period", file=source.pattern,
                               expected="logs whose timestamps fall between --from and --to")
@@ -96,7 +96,7 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
         elif m.probabilities() or m.statistic == "mean":
             key = f"{m.column}|{m.reads.get('transform', '')}|{m.metric['id']}"
             numeric[key] = (m.value_expr(), m.probabilities())
-    prof = scan.profile(con, source, numeric, sorted(set(categorical)), lo, hi, MAX_CATEGORIES_SEEN)
+    prof = scan.profile(engine, source, numeric, sorted(set(categorical)), lo, hi, MAX_CATEGORIES_SEEN)
     references: dict[str, dict[str, Any]] = {}
     aggregates = []
     for metric_id, m in measures.items():
@@ -108,8 +108,8 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
             p = {}
         ref = m.reference(p)
         references[metric_id] = ref
-        aggregates += [a.__class__(f"{metric_id}#{a.key}", a.expr) for a in m.aggregates(ref)]
-    counts = scan.run(con, source, aggregates, start=lo, end=hi).get(-1, {})
+        aggregates += [a.renamed(f"{metric_id}#{a.key}") for a in m.aggregates(ref)]
+    counts = scan.run(engine, source, aggregates, start=lo, end=hi).get(-1, {})
     checks: dict[str, Any] = {}
     for metric_id, m in measures.items():
         own = {k.split("#", 1)[1]: v for k, v in counts.items() if k.startswith(metric_id + "#")}
@@ -126,8 +126,9 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
             summary.setdefault(column, {"min": p["min"], "max": p["max"], "mean": p["mean"], "sd": p["sd"],
                                         "values": p["n"]})
     return {
-        "sources": [sources.file_digest(p) for p in source.paths],
+        "sources": source.describe(),
         "time_column": source.time_column,
+        "column_types": dict(source.columns),
         "period": {"from": sources.format_time(first_h * 3600.0), "to": sources.format_time((last_h + 1) * 3600.0)},
         "rows_unreadable_time": bad_ts,
         **rates,
@@ -137,24 +138,26 @@ def _calibrate_stage(con: Any, source: sources.Source, metrics: list[dict[str, A
     }
 
 
-def calibrate(plan_path: str, data: dict[str, str], out_dir: str, *, time_column: str = contract.TIME_COLUMN,
+def calibrate(plan_path: str, data: dict[str, Any], out_dir: str, *, time_column: str = contract.TIME_COLUMN,
               start: str | None = None, end: str | None = None,
-              progress: Callable[[str], None] | None = None) -> list[str]:
-    """Write ``out_dir/baseline.json`` from the reference logs; returns the lines to print."""
+              progress: Callable[[str], None] | None = None, engine: Any = None) -> list[str]:
+    """Write ``out_dir/baseline.json`` from the reference logs (``data``: stage to path or
+    :class:`~stagewatch.data.engines.Location`) on ``engine`` (default DuckDB); returns the lines to print."""
+    from stagewatch.data import engines
     from stagewatch.plan import load_plan
 
     plan, _ = load_plan(plan_path)
     by_stage = contract.checks_by_stage(plan)
     contract.check_stages(plan, data, plan_path)
     lo, hi = sources.parse_period(start, end)
-    con = sources.connect()
+    engine = engine or engines.make("duckdb")
     stages: dict[str, Any] = {}
     lines = []
-    for index, (stage, pattern) in enumerate(data.items()):
+    for index, (stage, where) in enumerate(engines.normal(data).items()):
         if progress:
             progress(stage)
-        source = sources.open_source(con, stage, pattern, time_column, index)
-        block = _calibrate_stage(con, source, by_stage.get(stage, []), lo, hi)
+        source = engine.open(stage, where, time_column, index)
+        block = _calibrate_stage(engine, source, by_stage.get(stage, []), lo, hi)
         stages[stage] = block
         lines.append(f"{stage}: {block['rows']:,} rows over {block['hours']:,} hours, "
                      f"{len(block['checks'])} check(s) calibrated"
@@ -181,8 +184,8 @@ def _write(path: str, body: dict[str, Any]) -> None:
     yamlio.write_atomic(path, text)
 
 
-def add_thresholds(plan_path: str, out_dir: str, data: dict[str, str], *, time_column: str,
-                   progress: Callable[[str], None] | None = None) -> list[str]:
+def add_thresholds(plan_path: str, out_dir: str, data: dict[str, Any], *, time_column: str,
+                   progress: Callable[[str], None] | None = None, engine: Any = None) -> list[str]:
     """Replay the reference period against its own baseline and store data-based thresholds in the baseline."""
     from stagewatch.data.replay import run_replay
     from stagewatch.data.thresholds import fit
@@ -195,7 +198,8 @@ def add_thresholds(plan_path: str, out_dir: str, data: dict[str, str], *, time_c
     starts = [s["period"]["from"] for s in body["stages"].values()]
     ends = [s["period"]["to"] for s in body["stages"].values()]
     start, end = min(starts), max(ends)
-    result = run_replay(plan_path, out_dir, data, start=start, end=end, time_column=time_column, progress=progress)
+    result = run_replay(plan_path, out_dir, data, start=start, end=end, time_column=time_column, progress=progress,
+                        engine=engine)
     metrics = {m["id"]: m for ms in contract.checks_by_stage(plan).values() for m in ms}
     found: dict[str, Any] = {}
     lo = sources.parse_time(start, "--from") or 0.0

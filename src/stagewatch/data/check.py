@@ -140,7 +140,7 @@ class Runnable:
         return "all" if self.seconds is None else durations.format(self.seconds)
 
     def aggregates(self) -> list[Any]:
-        return [a.__class__(f"{self.metric['id']}#{a.key}", a.expr) for a in self.measure.aggregates(self.ref)]
+        return [a.renamed(f"{self.metric['id']}#{a.key}") for a in self.measure.aggregates(self.ref)]
 
 
 def prepare(source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
@@ -170,7 +170,7 @@ def prepare(source: sources.Source, metrics: list[dict[str, Any]], stage_ref: di
     return rows, runnable
 
 
-def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
+def _check_stage(engine: Any, source: sources.Source, metrics: list[dict[str, Any]], stage_ref: dict[str, Any],
                  at: float, window_override: str | None, span: tuple[float | None, float | None]) -> list[CheckRow]:
     rows, runnable = prepare(source, metrics, stage_ref, window_override)
     if not runnable:
@@ -179,10 +179,10 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
     timed = [r.seconds for r in runnable if r.seconds is not None]
     if len(timed) == len(runnable):
         step = float(reduce(math.gcd, timed))
-        buckets = scan.run(con, source, aggregates, start=at - max(timed), end=at, step=step)
+        buckets = scan.run(engine, source, aggregates, start=at - max(timed), end=at, step=step)
     else:
         step = 0.0
-        buckets = scan.run(con, source, aggregates)
+        buckets = scan.run(engine, source, aggregates)
     first_ts, last_ts = span
     for r in runnable:
         metric, measure, ref, seconds = r.metric, r.measure, r.ref, r.seconds
@@ -208,18 +208,18 @@ def _check_stage(con: Any, source: sources.Source, metrics: list[dict[str, Any]]
             words = f"{result.n:,} samples, {min_samples(metric):,} needed; " + words
         row = _row(metric, source.stage, r.window, v, value=result.value, n=result.n, m=result.m, words=words,
                    detail=result.detail)
-        if measure.condition == "unseen" and result.detail.get("matches"):
-            row.detail["unseen_values"] = scan.values_not_in(con, source, measure.column or "",
+        if measure.condition == "unseen" and (result.detail.get("matches") or engine.emits):
+            row.detail["unseen_values"] = scan.values_not_in(engine, source, measure.column or "",
                                                              ref.get("categories_seen", []), start, end, UNSEEN_LIMIT)
         rows.append(row)
         cusum = sequential.setup(metric, ref, stage_ref)
         if cusum is not None:
-            rows.append(_cusum_row(con, source, r, cusum, first_ts, at))
+            rows.append(_cusum_row(engine, source, r, cusum, first_ts, at))
     order = {m["id"]: i for i, m in enumerate(metrics)}
     return sorted(rows, key=lambda r: (order[r.id.split("#")[0]], r.id))
 
 
-def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_ts: float | None,
+def _cusum_row(engine: Any, source: sources.Source, r: Runnable, cusum: Any, first_ts: float | None,
                at: float) -> CheckRow:
     """The CUSUM of a share from the start of the log to ``at``, grouped by hour."""
     import numpy as np
@@ -228,7 +228,9 @@ def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_
 
     keys = r.aggregates()
     start = (first_ts if first_ts is not None else at) - 1.0
-    buckets = scan.run(con, source, keys, start=start, end=at, step=3600.0)
+    # every row up to ``at`` (which is every row after ``start``): the query does not depend on the time range,
+    # so emitted SQL can ask it before anyone knows the range
+    buckets = scan.run(engine, source, keys, start=None, end=at, step=3600.0)
     count = int(math.ceil((at - start) / 3600.0))
     order = sorted((b for b in buckets if 0 <= b < count), reverse=True)
     matches = np.array([buckets[b][f"{r.metric['id']}#matches"] for b in order])
@@ -243,21 +245,25 @@ def _cusum_row(con: Any, source: sources.Source, r: Runnable, cusum: Any, first_
     return row
 
 
-def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_column: str = contract.TIME_COLUMN,
+def run_check(plan_path: str, baseline_dir: str, data: dict[str, Any], *, time_column: str = contract.TIME_COLUMN,
               window: str | None = None, at: str | None = None,
-              progress: Callable[[str], None] | None = None) -> CheckResult:
+              progress: Callable[[str], None] | None = None, engine: Any = None) -> CheckResult:
+    """Every check of the plan on the window ending at ``at``, from ``data`` (stage to path or
+    :class:`~stagewatch.data.engines.Location`) on ``engine`` (default DuckDB)."""
+    from stagewatch.data import engines
     from stagewatch.data.attribution import attribute
     from stagewatch.plan import load_plan
 
     plan, _ = load_plan(plan_path)
     base = load_baseline(baseline_dir, plan)
+    engine = engine or engines.make("duckdb")
+    engine.baseline = base
     if window not in (None, "all") and not durations.is_duration(window):
         raise StagewatchError(f"--window {window!r} is not a duration", expected="e.g. 1h, 1d or all")
     by_stage = contract.checks_by_stage(plan)
     contract.check_stages(plan, data, plan_path)
-    con = sources.connect()
-    opened = [sources.open_source(con, stage, pattern, time_column, i) for i, (stage, pattern) in enumerate(data.items())]
-    spans = {s.stage: scan.time_range(con, s)[:2] for s in opened}  # one query per log, used twice
+    opened = [engine.open(stage, where, time_column, i) for i, (stage, where) in enumerate(engines.normal(data).items())]
+    spans = {s.stage: scan.time_range(engine, s)[:2] for s in opened}  # one query per log, used twice
     moment = sources.parse_time(at, "--at")
     if moment is None:
         found = [last for _, last in spans.values() if last is not None]
@@ -277,7 +283,7 @@ def run_check(plan_path: str, baseline_dir: str, data: dict[str, str], *, time_c
             rows += [_row(m, source.stage, m.get("window", ""), "insufficient", n=0,
                           words="the log has no rows with a readable timestamp") for m in metrics]
             continue
-        rows += _check_stage(con, source, metrics, stage_ref, moment, window, spans[source.stage])
+        rows += _check_stage(engine, source, metrics, stage_ref, moment, window, spans[source.stage])
     service = sum(1 for s in plan["stages"] for m in s.get("metrics", [])
                   if contract.live(m) and m.get("layer") in ("input", "output") and not contract.in_log(m))
     result = CheckResult(at=moment, rows=rows, service_checks=service,

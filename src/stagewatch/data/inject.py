@@ -79,7 +79,7 @@ def _draw() -> exp.Expression:
     return exp.Div(this=exp.paren(exp.Mod(this=hashed, expression=ag.lit(1000003))), expression=ag.lit(1000003.0))
 
 
-def apply(con: Any, source: Source, injection: Injection, reference: dict[str, Any]) -> Source:
+def apply(engine: Any, source: Source, injection: Injection, reference: dict[str, Any]) -> Source:
     """A new view of ``source`` with the change applied; ``reference`` is the baseline's summary of the column."""
     if injection.kind != "volume" and not source.has(injection.column):
         raise StagewatchError(f"--inject: the log of {source.stage} has no column '{injection.column}'",
@@ -118,6 +118,6 @@ def apply(con: Any, source: Source, injection: Injection, reference: dict[str, A
     if where is not None:
         query = query.where(where)
     view = source.view + "_changed"
-    con.execute(f"CREATE OR REPLACE VIEW {view} AS {ag.sql(query)}")  # view names are ours
+    engine.define(view, query)  # DuckDB only: the row draw is DuckDB's hash
     return Source(stage=source.stage, pattern=source.pattern, paths=source.paths, view=view,
                   columns=source.columns, time_column=source.time_column, files=source.files)

@@ -66,8 +66,10 @@ class Measure:
         assert self.column is not None
         transform = self.reads.get("transform")
         if transform in ag.ERRORS:
-            return ag.error(transform, self.column, self.reads["other_column"])
-        return ag.number(self.column, transform)
+            other = self.reads["other_column"]
+            return ag.error(transform, self.column, other, self.column in self.numeric_columns,
+                            other in self.numeric_columns)
+        return ag.number(self.column, transform, self.column in self.numeric_columns)
 
     def is_categorical(self) -> bool:
         return self.statistic == "chi_square" or self.condition == "unseen"
@@ -112,11 +114,7 @@ class Measure:
             return ag.col(self.column).is_(exp.null()), None  # type: ignore[arg-type]
         if c == "out_of_range":
             lo, hi = self.reads["range"]
-            v = self.value_expr()
-            return exp.and_(v.copy().is_(exp.null()).not_(),
-                            exp.or_(exp.LT(this=v.copy(), expression=ag.lit(float(lo))),
-                                    exp.GT(this=v.copy(), expression=ag.lit(float(hi))),
-                                    exp.func("isnan", v.copy()))), None
+            return ag.outside(self.value_expr(), lo, hi), None
         if c == "unknown":
             return exp.EQ(this=ag.text(self.column), expression=ag.lit(self.reads.get("unknown_value", "unknown"))), None  # type: ignore[arg-type]
         if c == "unseen":
@@ -128,19 +126,18 @@ class Measure:
             v = ag.text(self.column)  # type: ignore[arg-type]
             return exp.or_(v.copy().is_(exp.null()), exp.EQ(this=exp.Trim(this=v.copy()), expression=ag.lit(""))), None
         if c == "set":
-            return exp.func("coalesce", exp.TryCast(this=ag.col(self.column), to=exp.DataType.build("BOOLEAN")),  # type: ignore[arg-type]
-                            exp.false()), None
+            return ag.flag_set(self.column), None  # type: ignore[arg-type]
         if c == "nonfinite":
             if self.column not in self.numeric_columns:
                 return exp.false(), None
             v = self.value_expr()
-            return exp.and_(v.copy().is_(exp.null()).not_(), exp.not_(exp.func("isfinite", v.copy()))), None
+            return exp.and_(v.copy().is_(exp.null()).not_(), exp.not_(ag.finite(v.copy()))), None
         if c == "invalid":
             ranges = self.reads.get("ranges", {})
             bad = []
             for name in self.reads.get("columns", []):
                 if name in ranges:
-                    v = ag.number(name)
+                    v = ag.number(name, None, name in self.numeric_columns)
                     lo, hi = ranges[name]
                     bad.append(exp.or_(exp.not_(ag.finite(v)), exp.LT(this=v.copy(), expression=ag.lit(float(lo))),
                                        exp.GT(this=v.copy(), expression=ag.lit(float(hi)))))
@@ -151,7 +148,8 @@ class Measure:
             a, b = self.column, self.reads["other_column"]
             both = exp.and_(ag.col(a).is_(exp.null()).not_(), ag.col(b).is_(exp.null()).not_())  # type: ignore[arg-type]
             if a in self.numeric_columns:  # a score against a label on the same scale: wrong side of 0.5
-                differ: Expr = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a), expression=ag.number(b)))),  # type: ignore[arg-type]
+                differ: Expr = exp.GTE(this=exp.Abs(this=exp.paren(exp.Sub(this=ag.number(a, None, True),  # type: ignore[arg-type]
+                                                                            expression=ag.number(b, None, b in self.numeric_columns)))),
                                                  expression=ag.lit(0.5))
             else:
                 differ = exp.NEQ(this=ag.text(a), expression=ag.text(b))  # type: ignore[arg-type]
@@ -166,11 +164,9 @@ class Measure:
 
     def aggregates(self, ref: dict[str, Any]) -> list[ag.Aggregate]:
         if self.statistic in ("psi", "ks"):
-            return [ag.Aggregate(f"bin{i}", ag.count_if(c))
-                    for i, c in enumerate(ag.bin_conditions(self.value_expr(), ref["edges"]))]
+            return ag.bins(self.value_expr(), ref["edges"])
         if self.statistic == "chi_square":
-            return [ag.Aggregate(f"cat{i}", ag.count_if(c))
-                    for i, c in enumerate(ag.category_conditions(ag.text(self.column), ref["categories"]))]  # type: ignore[arg-type]
+            return ag.categories(ag.text(self.column), ref["categories"])  # type: ignore[arg-type]
         if self.statistic == "mean":
             v = self.value_expr()
             fin = ag.finite(v)

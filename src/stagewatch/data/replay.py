@@ -158,7 +158,7 @@ def _levels(r: Runnable, values: np.ndarray, n: np.ndarray) -> tuple[np.ndarray,
     return np.where(insufficient, 0, level), insufficient
 
 
-def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], stage_ref: dict[str, Any],
+def _replay_stage(engine: Any, source: sources.Source, runnable: list[Runnable], stage_ref: dict[str, Any],
                   start: float, end: float, cadence: str) -> list[CheckReplay]:
     if not runnable:
         return []
@@ -168,7 +168,7 @@ def _replay_stage(con: Any, source: sources.Source, runnable: list[Runnable], st
     first = start - longest  # windows that end early in the period reach back before it
     nb = int(round((end_aligned - first) / step))
     aggregates = [a for r in runnable for a in r.aggregates()]
-    buckets = scan.run(con, source, aggregates, start=end_aligned - nb * step, end=end_aligned, step=step)
+    buckets = scan.run(engine, source, aggregates, start=end_aligned - nb * step, end=end_aligned, step=step)
     keys = [a.key for a in aggregates]
     matrix = np.zeros((nb, len(keys)))
     for b, row in buckets.items():
@@ -250,9 +250,13 @@ def _replay_cusum(r: Runnable, stage: str, cusum: Any, matrix: np.ndarray, colum
                        values=path[keep], samples=n[keep], reference_samples=r.ref.get("n"))
 
 
-def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start: str, end: str,
+def run_replay(plan_path: str, baseline_dir: str, data: dict[str, Any], *, start: str, end: str,
                cadence: str = "tumbling", time_column: str = contract.TIME_COLUMN,
-               injection: str | None = None, progress: Callable[[str], None] | None = None) -> ReplayResult:
+               injection: str | None = None, progress: Callable[[str], None] | None = None,
+               engine: Any = None) -> ReplayResult:
+    """Every check at every evaluation time of ``start .. end`` from ``data`` (stage to path or
+    :class:`~stagewatch.data.engines.Location`) on ``engine`` (default DuckDB)."""
+    from stagewatch.data import engines
     from stagewatch.plan import load_plan
 
     if cadence not in CADENCES:
@@ -266,21 +270,22 @@ def run_replay(plan_path: str, baseline_dir: str, data: dict[str, str], *, start
         raise StagewatchError(f"--inject names stage '{change.stage}', which has no --data", expected="a stage given with --data")
     by_stage = contract.checks_by_stage(plan)
     contract.check_stages(plan, data, plan_path)
-    con = sources.connect()
+    engine = engine or engines.make("duckdb")
+    engine.baseline = base
     checks: list[CheckReplay] = []
     unmeasured: list[CheckRow] = []
-    for index, (stage, pattern) in enumerate(data.items()):
+    for index, (stage, where) in enumerate(engines.normal(data).items()):
         if progress:
             progress(stage)
-        source = sources.open_source(con, stage, pattern, time_column, index)
+        source = engine.open(stage, where, time_column, index)
         stage_ref = base["stages"].get(stage)
         if stage_ref is None:
             continue
         if change and change.stage == stage:
-            source = inject.apply(con, source, change, stage_ref.get("columns", {}).get(change.column, {}))
+            source = inject.apply(engine, source, change, stage_ref.get("columns", {}).get(change.column, {}))
         rows, runnable = prepare(source, by_stage.get(stage, []), stage_ref, None)
         unmeasured += rows
-        checks += _replay_stage(con, source, runnable, stage_ref, lo, hi, cadence)
+        checks += _replay_stage(engine, source, runnable, stage_ref, lo, hi, cadence)
     budget = plan.get("budget") or {}
     result = ReplayResult(start=lo, end=hi, cadence=cadence, checks=checks, not_measured=unmeasured,
                           budget_pages=float(plan.get("false_alarms_per_week", 1)),

@@ -31,6 +31,13 @@ class Source:
     columns: dict[str, str]  # column -> DuckDB type
     time_column: str
     files: list[dict[str, Any]] = field(default_factory=list)  # path, bytes, sha256
+    table: str | None = None  # a table of the engine's catalog (--table), instead of files
+
+    def describe(self) -> list[dict[str, Any]]:
+        """What a baseline records of where the rows came from: each file's digest, or the table's name."""
+        if self.table is not None:
+            return [{"table": self.table}]
+        return [file_digest(p) for p in self.paths if os.path.isfile(p)] or [{"path": self.pattern}]
 
     def has(self, column: str) -> bool:
         return column in self.columns
@@ -97,26 +104,48 @@ def open_source(con: Any, stage: str, pattern: str, time_column: str, index: int
         raise StagewatchError(f"cannot read this file: {str(exc).splitlines()[0]}", file=paths[0],
                               expected=f"a readable {kind} file") from None
     columns = {name: str(kind_) for name, kind_ in zip(rel.columns, rel.types)}
-    if time_column not in columns:
-        raise StagewatchError(f"no column '{time_column}' (the log has: {', '.join(list(columns)[:12])})",
-                              file=pattern, expected="a timestamp column; name it with --time-column")
-    ts_type = columns[time_column]
-    if ts_type not in _TIME_TYPES:
-        raise StagewatchError(f"column '{time_column}' holds {ts_type}, not timestamps", file=pattern,
-                              expected="ISO 8601 timestamps (with or without an offset; without one, UTC)")
+    ts_type = check_time_type(time_column, columns, pattern)
     raw = f"log_{index}_raw"
     rel.create_view(raw)
+    from stagewatch.data import aggregates as ag
+
+    view = f"log_{index}"
+    con.execute(f"CREATE OR REPLACE VIEW {view} AS {ag.sql(with_seconds(raw, time_column, ts_type))}")  # our names
+    return Source(stage=stage, pattern=pattern, paths=paths, view=view, columns=columns, time_column=time_column)
+
+
+def seconds(time_column: str, ts_type: str) -> Any:
+    """The UTC seconds since the epoch of the time column, as a DOUBLE: whole microseconds over 1e6, so every
+    engine gets the same number. Text that is not a time becomes NULL (TRY_CAST)."""
     from sqlglot import exp
 
     from stagewatch.data import aggregates as ag
+    from stagewatch.data.dialects import epoch_us
 
     target = exp.DataType.build("TIMESTAMPTZ")
-    stamp = (exp.TryCast(this=ag.col(time_column), to=target) if ts_type == "VARCHAR"
+    stamp = (exp.TryCast(this=ag.col(time_column), to=target) if ts_type in ("VARCHAR", "STRING")
              else exp.cast(ag.col(time_column), target))
-    view = f"log_{index}"
-    query = exp.select(exp.Star(), exp.alias_(exp.func("epoch", stamp), TS)).from_(exp.to_table(raw))
-    con.execute(f"CREATE OR REPLACE VIEW {view} AS {ag.sql(query)}")  # view names are ours, never user text
-    return Source(stage=stage, pattern=pattern, paths=paths, view=view, columns=columns, time_column=time_column)
+    return exp.Div(this=exp.cast(epoch_us(stamp), "DOUBLE"), expression=exp.cast(exp.Literal.number(1000000), "DOUBLE"))
+
+
+def with_seconds(table: Any, time_column: str, ts_type: str) -> Any:
+    """``SELECT *, <UTC seconds> AS __stagewatch_ts FROM table``: the view every query of a stage reads."""
+    from sqlglot import exp
+
+    source = exp.to_table(table) if isinstance(table, str) else table
+    return exp.select(exp.Star(), exp.alias_(seconds(time_column, ts_type), TS)).from_(source)
+
+
+def check_time_type(time_column: str, columns: dict[str, str], where: str, time_types: tuple[str, ...] = ()) -> str:
+    """The type of the time column, refusing a log without one or with numbers in it."""
+    if time_column not in columns:
+        raise StagewatchError(f"no column '{time_column}' (the log has: {', '.join(list(columns)[:12])})",
+                              file=where, expected="a timestamp column; name it with --time-column")
+    ts_type = columns[time_column]
+    if ts_type not in (time_types or _TIME_TYPES):
+        raise StagewatchError(f"column '{time_column}' holds {ts_type}, not timestamps", file=where,
+                              expected="ISO 8601 timestamps (with or without an offset; without one, UTC)")
+    return ts_type
 
 
 def parse_time(text: str | None, option: str) -> float | None:
@@ -157,4 +186,5 @@ def connect() -> Any:
 
     con = duckdb.connect(":memory:")
     con.execute("SET TimeZone = 'UTC'")
+    con.execute("SET enable_progress_bar_print = false")  # DuckDB would draw on standard output, where results go
     return con
