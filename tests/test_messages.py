@@ -108,6 +108,16 @@ def test_lint_given_a_description_says_which_file_it_expected(write, capsys):
     assert "this is a pipeline description, not a plan" in err and f"stagewatch propose {description}" in err
 
 
+def test_render_explain_and_export_given_a_description_say_which_file_they_expected(write, tmp_path, capsys):
+    description = write("pipeline.yaml", SMALL)
+    for args in (["render", str(description), "-o", str(tmp_path / "out")],
+                 ["explain", str(description), "feed.input.amount_drift"],
+                 ["export", str(description), "--to", "prometheus", "-o", str(tmp_path / "prom")]):
+        err = _err(capsys, args)
+        assert "this is a pipeline description, not a plan" in err, (args, err)
+        assert f"stagewatch propose {description}" in err and len(err.splitlines()) == 1
+
+
 def test_explain_suggests_the_closest_metric_ids(write, tmp_path, capsys):
     from stagewatch.demo import DEMO
 

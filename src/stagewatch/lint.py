@@ -7,7 +7,7 @@ from typing import Any, Iterator
 
 from stagewatch import durations, fold, yamlio
 from stagewatch.errors import StagewatchError
-from stagewatch.plan import all_metrics, budget_summary, pipeline_of
+from stagewatch.plan import all_metrics, budget_summary, pipeline_of, require_plan
 
 LAYERS = ("software", "input", "output")
 LIVE = ("proposed", "accepted")
@@ -32,13 +32,7 @@ class Finding:
 def lint_file(path: str) -> list[Finding]:
     """All findings for the plan at ``path``; raises StagewatchError only when the file cannot be read as YAML."""
     doc = yamlio.load(path)
-    if isinstance(doc.data, dict) and "plan_version" not in doc.data and "stages" in doc.data:
-        raise StagewatchError("this is a pipeline description, not a plan: lint checks the plan that "
-                              f"`stagewatch propose {path} -o PLAN.yaml` writes", file=path, line=1,
-                              expected="a plan (a file with plan_version, written by `stagewatch propose`)")
-    if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
-        raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
-                              expected="a file written by `stagewatch propose`")
+    require_plan(doc, path, "lint checks")
     return lint_document(doc)
 
 

@@ -339,11 +339,20 @@ def dump(plan: dict[str, Any]) -> str:
     return HEADER + yamlio.dump(plan)
 
 
-def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
-    doc = yamlio.load(path)
+def require_plan(doc: yamlio.Document, path: str, reader: str = "this command reads") -> None:
+    """Refuse a file that is not a plan, saying what it is when it is a pipeline description."""
+    if isinstance(doc.data, dict) and "plan_version" not in doc.data and "stages" in doc.data:
+        raise StagewatchError(f"this is a pipeline description, not a plan: {reader} the plan that "
+                              f"`stagewatch propose {path} -o PLAN.yaml` writes", file=path, line=1,
+                              expected="a plan (a file with plan_version, written by `stagewatch propose`)")
     if not isinstance(doc.data, dict) or "plan_version" not in doc.data:
         raise StagewatchError("this is not a stagewatch plan (no plan_version)", file=path, line=1,
                               expected="a file written by `stagewatch propose`")
+
+
+def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
+    doc = yamlio.load(path)
+    require_plan(doc, path)
     yamlio.validate(doc, "plan")
     pipeline_of(doc.data, doc)  # the description part, with its own schema and graph checks
     _check_metric_ids(doc)
