@@ -92,3 +92,18 @@ def test_a_target_that_cannot_be_written_writes_nothing(tmp_path, capsys):
     assert main(["export", str(plan), "--to", "prometheus", "-o", str(out)]) == EXIT_USAGE
     assert "directory" in capsys.readouterr().err
     assert _tree(out) == before and (out / "rules" / "line_camera.rules.yml").is_dir()
+
+
+def test_export_refuses_thresholds_out_of_order_and_writes_nothing(tmp_path, capsys):
+    import yaml
+
+    _, plan = _plan(tmp_path)
+    data = yaml.safe_load(plan.read_text())
+    metric = next(m for s in data["stages"] for m in s["metrics"] if m["id"] == "load_cell.input.weight_g_drift")
+    metric["warn"], metric["critical"] = 0.5, 0.25  # a reviewer's slip: warn above critical
+    plan.write_text(yaml.safe_dump(data, sort_keys=False))
+    out = tmp_path / "export"
+    assert main(["export", str(plan), "--to", "prometheus", "-o", str(out)]) == EXIT_USAGE
+    err = capsys.readouterr().err
+    assert "load_cell.input.weight_g_drift" in err and "nothing was written" in err
+    assert not out.exists()

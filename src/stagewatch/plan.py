@@ -70,13 +70,24 @@ class _Context:
                                       durations.format(max(delays)) if delays else None)
             # What reaches the end: end-to-end latency and the final output are counted where items leave the
             # pipeline (summing the sources would count one fruit once per camera frame and once per weighing).
-            return sizing.Traffic(sum(s.volume_per_hour for s in sinks), fastest)
+            return sizing.Traffic(sum(s.volume_per_hour for s in sinks), fastest, run_every=_slowest_run(sinks))
         stage = stages[edge[0]] if edge else stages[owner]
+        # A check is judged on whole runs of the stage whose log it reads: the consumer's side of a hand-off is
+        # read in the consumer's log, so a batch consumer's runs set its windows, whatever the producer's pace.
+        run_every = stages[owner].run_every if owner in stages else stage.run_every
         if quality:
             return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay,
-                                  run_every=stage.run_every)
+                                  run_every=run_every)
         return sizing.Traffic(stage.volume_per_hour, stage.change_rate, None, stage.slo_target, stage.slo_period,
-                              stage.latency_slo_ms, stage.run_every)
+                              stage.latency_slo_ms, run_every)
+
+
+def _slowest_run(stages: list[Any]) -> str | None:
+    """The longest ``run_every`` among stages that all run in batches (None when any of them runs continuously)."""
+    runs = [s.run_every for s in stages]
+    if not runs or any(r is None for r in runs):
+        return None
+    return max(runs, key=durations.parse)
 
 
 def _is_quality(metric: dict[str, Any]) -> bool:

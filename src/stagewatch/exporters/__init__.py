@@ -42,6 +42,20 @@ def live_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
     return [m for m in all_metrics(plan) if m["status"] in ("accepted", "proposed")]
 
 
+# Findings that would make the exported rules wrong, not merely incomplete: refused before anything is written.
+BLOCKING = ("threshold-order",)
+
+
 def export(plan_path: str, to: str, target: str, force: bool = False) -> list[str]:
-    plan, _ = load_plan(plan_path)
+    from stagewatch.errors import StagewatchError
+    from stagewatch.lint import lint_document
+
+    plan, doc = load_plan(plan_path)
+    blocking = [f for f in lint_document(doc) if f.code in BLOCKING]
+    if blocking:
+        first = blocking[0]
+        more = "".join(f"\n  also {f}" for f in blocking[1:5])
+        raise StagewatchError(f"{first.message}: the exported rules would alert at the wrong level; nothing was "
+                              f"written{more}", file=plan_path, line=first.line,
+                              expected="warn before critical in the check's direction (`stagewatch lint` lists it)")
     return EXPORTERS[to](plan, target, [plan_path], force=force)
