@@ -12,7 +12,7 @@ import yaml
 from conftest import PIPELINES, demo_path
 from stagewatch import durations, fold, render
 from stagewatch.catalog import load_catalog, match
-from stagewatch.exporters.prometheus import FIRST_RESPONSE, FIRST_RESPONSE_AT_ENTRY
+from stagewatch.exporters.alert_text import FIRST_RESPONSE, FIRST_RESPONSE_AT_ENTRY
 from stagewatch.graph import PipelineGraph
 from stagewatch.lint import lint_file
 from stagewatch.plan import all_metrics, compose

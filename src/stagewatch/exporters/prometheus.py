@@ -8,7 +8,6 @@ from __future__ import annotations
 
 import json
 import math
-import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -22,8 +21,8 @@ from stagewatch.names import alert_name
 from stagewatch.owned import write_owned
 from stagewatch.safewrite import STDOUT
 from stagewatch.exporters import live_metrics
-from stagewatch.exporters.alertmanager import (AM_HEADER, LINEAGE_LABEL, Lineage, alertmanager_config,
-                                                drift_below, explains_drift, is_drift)
+from stagewatch.exporters.alert_text import alert_annotations, alert_labels, fmt, inert
+from stagewatch.exporters.alertmanager import AM_HEADER, Lineage, alertmanager_config, drift_below, explains_drift
 from stagewatch.exporters.instrumentation import instrumentation_markdown
 from stagewatch.exporters.level_signals import CounterLevelSignal
 from stagewatch.exporters.signals import (FAMILIES, Series, ShareSignal, Signal, counter,
@@ -33,40 +32,13 @@ from stagewatch.plan import all_metrics
 PIPELINE_STAGE = "pipeline"
 SLO_WINDOWS = ("5m", "30m", "1h", "6h", "3d")
 
-FIRST_RESPONSE = {
-    "software": "Check the stage's recent deploys, its dependencies and its resource use; roll back if a change "
-                "lines up with the start.",
-    "input": "Look at the upstream stage's output alerts first (the same statistic is checked on both sides of "
-             "the hand-off); if upstream is quiet, look for a change in the source: new sensor, supplier, client.",
-    "output": "Compare with this stage's input alerts: if inputs moved too, follow them upstream; if not, the "
-              "stage itself changed (model, rules, configuration) or the world did (concept drift).",
-}
-# Where data enters the pipeline there is no upstream stage to look at first.
-FIRST_RESPONSE_AT_ENTRY = {
-    **FIRST_RESPONSE,
-    "input": "Data enters the pipeline here, so no stage above can explain it: look for a change in the source "
-             "itself (a new or moved sensor, a new supplier or client, a changed export) or in the world it measures.",
-    "output": "Data enters the pipeline here: if its input checks moved too, the source changed; if not, look at "
-              "how this stage records or forwards what it receives (firmware, configuration, a new release).",
-}
-
-
-def _inert(text: Any) -> str:
-    """Free text for an annotation, on one line, as Prometheus shows it after expanding the template."""
-    return re.sub(r"\s+", " ", str(text or "")).strip()
-
-
 def _templated(values: dict[str, str]) -> dict[str, str]:
     """Label values and annotations as written in a rule: Prometheus expands them as Go templates."""
     return {key: go_template_literal(value) for key, value in values.items()}
 
 
-def _fmt(x: float) -> str:
-    return f"{x:.10g}"
-
-
 def _compare(value: str, metric: dict[str, Any], threshold: float, level_reading: bool) -> str:
-    t = _fmt(threshold)
+    t = fmt(threshold)
     direction = metric["direction"]
     if level_reading:
         return f"{value} {'<=' if direction == 'below' else '>='} {t}"
@@ -137,38 +109,6 @@ class Case:
     alert_tests: list[dict[str, Any]]
 
 
-def _labels(metric: dict[str, Any], owner: str | None, level: str, severity: str,
-            lineage: str | None = None) -> dict[str, str]:
-    drift = is_drift(metric)
-    labels: dict[str, str] = {"severity": severity, "level": level, "layer": metric["layer"],
-                              "drift": "true" if drift else "false",
-                              "explains": "true" if explains_drift(metric) else "false"}
-    if owner:
-        labels["owner"] = owner
-    if drift and lineage:  # what an upstream alert matches to hold this one back (alertmanager.Lineage)
-        labels[LINEAGE_LABEL] = lineage
-    return labels
-
-
-LABEL_COUNTING = ("counts labelled items when their label arrives, not when the prediction is made: a change in "
-                  "predictions shows here one label delay later")
-
-
-def _annotations(metric: dict[str, Any], level: str, threshold: float, stage_info: dict[str, Any]) -> dict[str, str]:
-    first = FIRST_RESPONSE_AT_ENTRY if stage_info and not stage_info.get("upstream") else FIRST_RESPONSE
-    out = {
-        "summary": _inert(f"{metric['id']}: {metric.get('measure', '')} beyond {level} threshold "
-                          f"{_fmt(threshold)} ({metric.get('unit', '')}) over {metric['window']}"),
-        "description": _inert(metric.get("why", "")),
-        "first_response": _inert(first[metric["layer"]]),
-        "plan_metric": metric["id"],
-    }
-    if metric.get("on_labels"):
-        lag = (metric.get("sizing") or {}).get("evaluation_lag")
-        out["counting"] = _inert(LABEL_COUNTING + (f" ({lag})" if lag else ""))
-    return out
-
-
 def _series_lines(series: Series) -> list[dict[str, str]]:
     return [{"series": key, "values": _compact(values)} for key, values in series.values.items()]
 
@@ -179,7 +119,7 @@ def _compact(values: Sequence[float | None]) -> str:
     above 1) is written as one term, so a steady counter or gauge costs a few characters instead of one number
     per step. Missing samples stay ``_``."""
     def text(v: float | None) -> str:
-        return "_" if v is None else _fmt(round(v, 9))
+        return "_" if v is None else fmt(round(v, 9))
 
     terms: list[str] = []
     i, count = 0, len(values)
@@ -191,7 +131,7 @@ def _compact(values: Sequence[float | None]) -> str:
             i += 1
             continue
         head = text(first)
-        step_text = _fmt(round(abs(second - first), 9))
+        step_text = fmt(round(abs(second - first), 9))
         increment = float(step_text) if second >= first else -float(step_text)
         end, value = i, float(head)
         while end + 1 < count:
@@ -231,12 +171,12 @@ def _signal_alerts(sig: Signal, metric: dict[str, Any], owner: str | None, group
         rule: dict[str, Any] = {"alert": name, "expr": _compare(value, metric, threshold, sig.level_reading)}
         if sig.for_ != "0s":
             rule["for"] = sig.for_
-        labels = _labels(metric, owner, level, severity, group.lineage)
-        annotations = _annotations(metric, level, threshold, sig.stage_info)
+        labels = alert_labels(metric, owner, level, severity, group.lineage)
+        annotations = alert_annotations(metric, level, threshold, sig.stage_info)
         if explains and level == "critical":
             shown = ", ".join(explains[:EXPLAINS_SHOWN])
             more = len(explains) - EXPLAINS_SHOWN
-            annotations["likely_explains"] = _inert(
+            annotations["likely_explains"] = inert(
                 "drift checks below this stage that this alert holds back while it fires (they stay visible as "
                 f"inhibited): {shown}" + (f" and {more} more" if more > 0 else ""))
         rule["labels"] = _templated(labels)
@@ -338,14 +278,14 @@ def _slo_alerts(metric: dict[str, Any], pipeline: str, stage: str, stage_info: d
         mine = [p for p in pairs if p["severity"] == severity]
         if not mine:
             continue
-        clauses = [f"({record}:rate{p['long_window']}{sel} > {_fmt(p['burn_rate'] * budget)}\n"
-                   f"   and {record}:rate{p['short_window']}{sel} > {_fmt(p['burn_rate'] * budget)})" for p in mine]
+        clauses = [f"({record}:rate{p['long_window']}{sel} > {fmt(p['burn_rate'] * budget)}\n"
+                   f"   and {record}:rate{p['short_window']}{sel} > {fmt(p['burn_rate'] * budget)})" for p in mine]
         threshold = min(p["burn_rate"] for p in mine)
-        annotations = _annotations(metric, level, threshold, stage_info)
-        annotations["summary"] = _inert(
-            f"{metric['id']}: error budget of the {target:g} SLO burning at more than {_fmt(threshold)}x "
+        annotations = alert_annotations(metric, level, threshold, stage_info)
+        annotations["summary"] = inert(
+            f"{metric['id']}: error budget of the {target:g} SLO burning at more than {fmt(threshold)}x "
             f"({', '.join(p['long_window'] + '/' + p['short_window'] for p in mine)})")
-        labels = _labels(metric, owner, level, severity)
+        labels = alert_labels(metric, owner, level, severity)
         rule: dict[str, Any] = {"alert": name, "expr": "\n  or ".join(clauses),
                                 "labels": _templated(labels), "annotations": _templated(annotations)}
         group.rules.append(rule)
