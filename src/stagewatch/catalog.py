@@ -106,7 +106,28 @@ def modality_enters(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph
     return not same or any(u.output == "gate" for u in same)
 
 
-def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph) -> bool:
+@dataclass(frozen=True)
+class _Derived:
+    """A stage's traits that depend on its neighbours, computed once per proposal rather than once per rule."""
+
+    handed_over: frozenset[str]  # input fields a hand-off's contract check already covers
+    own_inputs: bool  # inputs no hand-off contract covers (or no upstream at all)
+    modality_enters: bool
+    aggregates: bool
+
+
+def _derive(pipeline: Pipeline, graph: PipelineGraph) -> dict[str, _Derived]:
+    stages = {s.id: s for s in pipeline.stages}
+    out = {}
+    for stage in pipeline.stages:
+        handed = frozenset(_handed_over(stage, stages, graph))
+        own = not graph.upstream(stage.id) or any(f.name not in handed for f in stage.inputs)
+        out[stage.id] = _Derived(handed, own, modality_enters(stage, stages, graph), aggregates(stage, stages, graph))
+    return out
+
+
+def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph,
+                  derived: dict[str, _Derived]) -> bool:
     for key in _TRAITS:
         if key in cond and getattr(stage, key) not in cond[key]:
             return False
@@ -114,15 +135,12 @@ def _traits_match(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph:
         return False
     if "has_inputs" in cond and bool(stage.inputs) != cond["has_inputs"]:
         return False
-    stages = {s.id: s for s in pipeline.stages}
-    if "has_own_inputs" in cond:
-        handed = _handed_over(stage, stages, graph)
-        own = not graph.upstream(stage.id) or any(f.name not in handed for f in stage.inputs)
-        if own != cond["has_own_inputs"]:
-            return False
-    if "modality_enters" in cond and modality_enters(stage, stages, graph) != cond["modality_enters"]:
+    mine = derived[stage.id]
+    if "has_own_inputs" in cond and mine.own_inputs != cond["has_own_inputs"]:
         return False
-    if "aggregates" in cond and aggregates(stage, stages, graph) != cond["aggregates"]:
+    if "modality_enters" in cond and mine.modality_enters != cond["modality_enters"]:
+        return False
+    if "aggregates" in cond and mine.aggregates != cond["aggregates"]:
         return False
     if "context" in cond and pipeline.context not in cond["context"]:
         return False
@@ -142,9 +160,9 @@ def _handed_over(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -
     return {c for u in graph.upstream(stage.id) for c in handoff_columns(stages[u], stage)}
 
 
-def _fields(cond: dict[str, Any], stage: Stage, pipeline: Pipeline, graph: PipelineGraph) -> Iterator[FieldSpec]:
+def _fields(cond: dict[str, Any], stage: Stage, derived: dict[str, _Derived]) -> Iterator[FieldSpec]:
     fields = stage.inputs if cond["each"] == "input_field" else stage.outputs
-    handed = _handed_over(stage, {s.id: s for s in pipeline.stages}, graph) if "field_handed_over" in cond else set()
+    handed = derived[stage.id].handed_over
     for f in fields:
         if "field_handed_over" in cond and (f.name in handed) != cond["field_handed_over"]:
             continue
@@ -161,14 +179,15 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
     """Every metric the catalog proposes for ``pipeline``, stages in topological order."""
     out: list[Proposal] = []
     stages = {s.id: s for s in pipeline.stages}
+    derived = _derive(pipeline, graph)
     for stage_id in graph.order:
         stage = stages[stage_id]
         for rule in rules:
-            if rule.scope != "stage" or not _traits_match(rule.when, stage, pipeline, graph):
+            if rule.scope != "stage" or not _traits_match(rule.when, stage, pipeline, graph, derived):
                 continue
             values = {"stage": stage.id}
             if "each" in rule.when:
-                for f in _fields(rule.when, stage, pipeline, graph):
+                for f in _fields(rule.when, stage, derived):
                     for template in rule.metrics:
                         v = {**values, "field": f.name}
                         out.append(Proposal(stage.id, template["name"].format(**v), rule, template, f, values=v))
@@ -180,9 +199,9 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
         for rule in rules:
             if rule.scope != "edge":
                 continue
-            if not _traits_match(rule.when.get("from", {}), stages[up], pipeline, graph):
+            if not _traits_match(rule.when.get("from", {}), stages[up], pipeline, graph, derived):
                 continue
-            if not _traits_match(rule.when.get("to", {}), stages[down], pipeline, graph):
+            if not _traits_match(rule.when.get("to", {}), stages[down], pipeline, graph, derived):
                 continue
             values = {"upstream": up, "downstream": down}
             for template in rule.metrics:
@@ -194,10 +213,10 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
         if rule.scope != "pipeline":
             continue
         cond = rule.when
-        if "any_stage" in cond and not any(_traits_match(cond["any_stage"], s, pipeline, graph)
+        if "any_stage" in cond and not any(_traits_match(cond["any_stage"], s, pipeline, graph, derived)
                                            for s in pipeline.stages):
             continue
-        if "any_sink" in cond and not any(_traits_match(cond["any_sink"], s, pipeline, graph) for s in sinks):
+        if "any_sink" in cond and not any(_traits_match(cond["any_sink"], s, pipeline, graph, derived) for s in sinks):
             continue
         if "one_to_one" in cond and one_to_one(pipeline, graph) != cond["one_to_one"]:
             continue

@@ -103,11 +103,7 @@ def _meaning(doc: yamlio.Document) -> Iterator[Finding]:
                           f"metric '{mid}': reference {metric['reference']} is shorter than window "
                           f"{metric['window']}", mid)
         warn, critical = metric.get("warn"), metric.get("critical")
-        if warn is not None and critical is not None and not ordered(warn, critical, metric["direction"],
-                                                                                  metric["statistic"]):
-            yield Finding(path, doc.line_of((*where, "warn")), "threshold-order",
-                          f"metric '{mid}': warn {warn:g} must come before critical {critical:g} for direction "
-                          f"'{metric['direction']}'", mid)
+        yield from _threshold_order(doc, where, metric)
         if warn is None and critical is None and metric["status"] in LIVE:
             yield Finding(path, line, "threshold-missing", f"metric '{mid}' has neither a warn nor a critical "
                           "threshold, so it can never alert", mid)
@@ -143,11 +139,23 @@ def _counts(metric: dict[str, Any]) -> bool:
     return metric["status"] in LIVE or (metric["status"] == "rejected" and bool((metric.get("note") or "").strip()))
 
 
+def _threshold_order(doc: yamlio.Document, where: tuple[Any, ...], metric: dict[str, Any]) -> Iterator[Finding]:
+    warn, critical = metric.get("warn"), metric.get("critical")
+    if warn is not None and critical is not None and not ordered(warn, critical, metric["direction"],
+                                                                  metric["statistic"]):
+        yield Finding(doc.path, doc.line_of((*where, "warn")), "threshold-order",
+                      f"metric '{metric['id']}': warn {warn:g} must come before critical {critical:g} for "
+                      f"direction '{metric['direction']}'", metric["id"])
+
+
+def misordered(doc: yamlio.Document) -> list[Finding]:
+    """Only the thresholds out of order: what would make exported rules alert at the wrong level."""
+    return [f for where, metric, _ in _located(doc) for f in _threshold_order(doc, where, metric)]
+
+
 def _duplicate_signals(doc: yamlio.Document) -> Iterator[Finding]:
     plan = doc.data
-    where = {m["id"]: ("stages", i, "metrics", j) for i, s in enumerate(plan["stages"])
-             for j, m in enumerate(s.get("metrics", []))}
-    where.update({m["id"]: ("pipeline_metrics", j) for j, m in enumerate(plan.get("pipeline_metrics", []))})
+    where = {metric["id"]: path for path, metric, _ in _located(doc)}
     for first, later in fold.duplicates(all_metrics(plan)):
         yield Finding(doc.path, doc.line_of((*where[later["id"]], "id")), "duplicate-signal",
                       f"metrics '{first['id']}' and '{later['id']}' read the same column of the same log with the "

@@ -42,16 +42,12 @@ def live_metrics(plan: dict[str, Any]) -> list[dict[str, Any]]:
     return [m for m in all_metrics(plan) if m["status"] in ("accepted", "proposed")]
 
 
-# Findings that would make the exported rules wrong, not merely incomplete: refused before anything is written.
-BLOCKING = ("threshold-order",)
-
-
 def export(plan_path: str, to: str, target: str, force: bool = False) -> list[str]:
     from stagewatch.errors import StagewatchError
-    from stagewatch.lint import lint_document
+    from stagewatch.lint import misordered
 
     plan, doc = load_plan(plan_path)
-    blocking = [f for f in lint_document(doc) if f.code in BLOCKING]
+    blocking = misordered(doc)  # rules that would alert at the wrong level: refused before anything is written
     if blocking:
         first = blocking[0]
         more = "".join(f"\n  also {f}" for f in blocking[1:5])
