@@ -18,6 +18,7 @@ from stagewatch import durations, fold, renames, sizing, stats, yamlio
 from stagewatch.data import contract
 from stagewatch.catalog import PIPELINE_OWNER, Proposal, Rule, load_catalog, match
 from stagewatch.errors import StagewatchError
+from stagewatch.fanout import fan_out
 from stagewatch.graph import PipelineGraph
 from stagewatch.names import first_collision
 from stagewatch.spec import Pipeline
@@ -142,15 +143,30 @@ def _order(metric: dict[str, Any]) -> dict[str, Any]:
     return ordered
 
 
-def _apply_sizing(metric: dict[str, Any], traffic: sizing.Traffic, budget: sizing.Budget, refresh: bool) -> None:
-    """Fill window, thresholds and the sizing block; ``refresh=False`` keeps the metric's own window/thresholds."""
+def _sizing_input(metric: dict[str, Any], traffic: sizing.Traffic) -> dict[str, Any]:
+    """What sizing reads of one metric: the metric under its id as name, with the label delay of a quality check."""
     work = dict(metric)
     work["name"] = metric["id"]
     if traffic.label_delay and _is_quality(metric):
         work["_label_delay"] = traffic.label_delay
+    return work
+
+
+def _sized(job: tuple[dict[str, Any], sizing.Traffic, sizing.Budget]) -> dict[str, Any]:
+    return sizing.size_metric(*job)
+
+
+def _shares_tails(job: tuple[dict[str, Any], sizing.Traffic, sizing.Budget]) -> tuple[Any, ...]:
+    """Checks on the same traffic compute the same window and reference sizes, so many of the same tail sums:
+    size them in one process."""
+    traffic = job[1]
+    return traffic.per_hour, traffic.change_rate, traffic.run_every
+
+
+def _store_sizing(metric: dict[str, Any], result: dict[str, Any], refresh: bool) -> None:
+    """Fill window, thresholds and the sizing block; ``refresh=False`` keeps the metric's own window/thresholds."""
     if not refresh and metric.get("window") == "auto":
         refresh = True  # a reviewer wrote "auto": size this metric again (thresholds included)
-    result = sizing.size_metric(work, traffic, budget)
     metric["review"] = result["review"]
     metric["sizing"] = result["sizing"]
     if not refresh:
@@ -170,12 +186,13 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
     stages = {s.id: s for s in pipeline.stages}
     fresh: dict[str, dict[str, Any]] = {}
     traffic_of: dict[str, sizing.Traffic] = {}
+    sinks = graph.sinks
     for proposal in match(rules, pipeline, graph):
         traffic = context.traffic(proposal.owner, proposal.edge, bool(proposal.template.get("on_labels")))
         draft = _draft(proposal, traffic.change_rate)  # labelled or not, the change rate is the stage's
         reads = contract.reads_for(proposal.template.get("reads"), owner=stages.get(proposal.owner),
-                                   pipeline=pipeline, sinks=graph.sinks, name=proposal.name,
-                                   field=proposal.field, edge=proposal.edge)
+                                   pipeline=pipeline, sinks=sinks, name=proposal.name,
+                                   field=proposal.field, edge=proposal.edge, stages=stages)
         if reads:
             draft["reads"] = reads
         fresh[draft["id"]] = draft
@@ -222,6 +239,8 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
     # Budget over everything that will alert, then size.
     budget = sizing.make_budget(list(merged.values()), pipeline.false_alarms_per_week,
                                 pipeline.false_tickets_per_week, owners=[*graph.order, PIPELINE_OWNER])
+    to_size: list[str] = []
+    jobs: list[tuple[dict[str, Any], sizing.Traffic, sizing.Budget]] = []
     for metric_id, metric in merged.items():
         owner = metric_id.split(".", 1)[0]
         known: sizing.Traffic | None = traffic_of.get(metric_id)
@@ -230,9 +249,14 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
             edge_t = (edge["from"], edge["to"]) if edge and edge.get("from") in stages else None
             known = context.traffic(owner, edge_t, _is_quality(metric))
         if known is not None and metric.get("status") != "stale" and metric.get("window"):
-            _apply_sizing(metric, known, budget, refresh=metric_id not in kept)
-            if data_thresholds and metric_id not in kept:
-                _apply_data_thresholds(metric, data_thresholds, pipeline.thresholds_from_data == "replace")
+            to_size.append(metric_id)
+            jobs.append((_sizing_input(metric, known), known, budget))
+    for metric_id, result in zip(to_size, fan_out(_sized, jobs, key=_shares_tails)):  # independent checks, on every core
+        metric = merged[metric_id]
+        _store_sizing(metric, result, refresh=metric_id not in kept)
+        if data_thresholds and metric_id not in kept:
+            _apply_data_thresholds(metric, data_thresholds, pipeline.thresholds_from_data == "replace")
+    for metric_id, metric in merged.items():
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)
     return _assemble(pipeline, graph, merged, kept, existing)

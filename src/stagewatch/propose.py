@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 from stagewatch import comments, renames
@@ -105,7 +104,7 @@ def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None =
         if snapshot.digest is not None:
             existing, doc = plan_mod.load_plan(target)
             snapshot = doc.snapshot()  # the bytes the merge starts from
-            old_text = Path(target).read_text(encoding="utf-8")
+            old_text = doc.text
     found = None
     if baseline_dir:
         from stagewatch.data.baseline import load_thresholds

@@ -31,7 +31,7 @@ LONGEST = LADDER[-1]
 POWER = stats.DEFAULT_POWER
 
 
-@dataclass
+@dataclass(frozen=True)
 class Traffic:
     """What a metric sees: items per hour, how fast they change, and label timing for quality metrics."""
 

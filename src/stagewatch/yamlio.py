@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 import yaml
 
-from stagewatch import wording
+from stagewatch import wording, yamlnodes
 from stagewatch.errors import StagewatchError
 from stagewatch.safewrite import Snapshot, safe_write
 
@@ -27,6 +27,7 @@ class Document:
     data: Any
     root: yaml.Node | None
     digest: str | None = None  # SHA-256 of the bytes read, for the check before a file is replaced
+    text: str = ""  # the text read (a merge keeps the reviewers' comments from it)
 
     def snapshot(self) -> Snapshot:
         """What this file held when it was read, for ``write_atomic(..., expected=...)``."""
@@ -142,7 +143,26 @@ def _check_tree(root: yaml.Node | None, path: str) -> None:
                               expected=f"aliases that add at most {MAX_ALIAS_EXPANSION:,} nodes")
 
 
-_Loader = getattr(yaml, "CSafeLoader", yaml.SafeLoader)  # libyaml when present: the same result, much faster
+class _CachedResolve:
+    """PyYAML's resolver (is this scalar text an int, a float, a bool, a date?) with its answers kept per text.
+
+    Plans repeat the same texts thousands of times (statuses, severities, windows, numbers, the derivation of
+    checks sized alike); the rules are PyYAML's own, so the result is the same."""
+
+    _resolved: dict[tuple[str, Any], str] = {}
+
+    def resolve(self, kind: type, value: Any, implicit: Any) -> Any:
+        if kind is not yaml.ScalarNode:
+            return super().resolve(kind, value, implicit)  # type: ignore[misc]
+        key = (value, implicit)
+        tag = self._resolved.get(key)
+        if tag is None:
+            tag = self._resolved[key] = super().resolve(kind, value, implicit)  # type: ignore[misc]
+        return tag
+
+
+class _Loader(_CachedResolve, getattr(yaml, "CSafeLoader", yaml.SafeLoader)):  # type: ignore[misc]
+    """libyaml's parser when present (the same result as PyYAML's, much faster), with the cached resolver."""
 
 
 def parse(text: str, path: str) -> Document:
@@ -191,6 +211,7 @@ def load(path: str | os.PathLike[str]) -> Document:
         raise StagewatchError(f"cannot read this file: {exc.strerror}", file=str(p)) from None
     doc = parse(text, str(p))
     doc.digest = hashlib.sha256(raw).hexdigest()
+    doc.text = text
     return doc
 
 
@@ -300,21 +321,19 @@ def validate(doc: Document, kind: str) -> None:
     raise StagewatchError(message, file=doc.path, line=line, expected=expected)
 
 
-class _Dumper(getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]
+class _Dumper(_CachedResolve, getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  # type: ignore[misc]
     """libyaml's emitter with PyYAML's safe representer. The emitter asks the resolver, for every scalar, whether
     its text would read back as another type (and so needs quotes); generated files repeat the same texts
-    thousands of times, so the answers are kept per text. The rules are PyYAML's own, so the output is the same."""
+    thousands of times, so the answers are kept per text (:class:`_CachedResolve`)."""
 
-    _resolved: dict[tuple[str, tuple[bool, bool]], str] = {}
-
-    def resolve(self, kind: type, value: Any, implicit: Any) -> Any:
-        if kind is not yaml.ScalarNode:
-            return super().resolve(kind, value, implicit)
-        key = (value, implicit)
-        tag = self._resolved.get(key)
-        if tag is None:
-            tag = self._resolved[key] = super().resolve(kind, value, implicit)
-        return tag
+    def represent(self, data: Any) -> None:
+        """PyYAML's ``represent``, with the nodes of plain data built in one pass (:mod:`stagewatch.yamlnodes`)."""
+        try:
+            node = yamlnodes.nodes(data, super().represent_data)
+        except yamlnodes.Shared:  # shared objects: PyYAML's representer writes the anchors and aliases
+            return super().represent(data)
+        self.serialize(node)
+        self.represented_objects, self.object_keeper, self.alias_key = {}, [], None
 
     def represent_data(self, data: Any) -> yaml.Node:
         if type(data) is str:  # never an alias: straight to the one representer for text

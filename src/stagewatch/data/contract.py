@@ -73,12 +73,13 @@ def _declared(stages: list[Stage], column: str) -> FieldSpec | None:
 
 
 def reads_for(template: dict[str, Any] | None, *, owner: Stage | None, pipeline: Pipeline, sinks: list[str],
-              name: str, field: FieldSpec | None = None, edge: tuple[str, str] | None = None
-              ) -> dict[str, Any] | None:
-    """The concrete ``reads`` of one metric from its rule's template (``None`` when the rule has none)."""
+              name: str, field: FieldSpec | None = None, edge: tuple[str, str] | None = None,
+              stages: dict[str, Stage] | None = None) -> dict[str, Any] | None:
+    """The concrete ``reads`` of one metric from its rule's template (``None`` when the rule has none);
+    ``stages`` is the pipeline's stages by id, when the caller has it already."""
     if template is None:
         return None
-    stages = {s.id: s for s in pipeline.stages}
+    stages = stages if stages is not None else {s.id: s for s in pipeline.stages}
     reads = copy.deepcopy(template)
     if reads.get("measured_in") == SERVICE:
         return reads
