@@ -75,6 +75,36 @@ def test_burn_rate_sizing_uses_the_workbook_pairs():
     assert result["critical"] == 14.4
 
 
+def _failures_over(rate, requests, target):
+    """The smallest whole count of failures whose share of ``requests`` is above rate x (1 - target), in exact
+    fractions: the Workbook's page condition (ch. 5, table 5-8), independent of the float arithmetic in sizing."""
+    from fractions import Fraction
+    bound = Fraction(str(rate)) * (1 - Fraction(str(target))) * Fraction(requests)
+    return math.floor(bound) + 1
+
+
+def test_burn_rate_flags_only_when_one_failure_pages():
+    # SRE Workbook ch. 5: burn rate = error ratio / (1 - SLO); at 99.9% the 30-day page pair is 14.4 over 1h with a
+    # 5m short window (table 5-8), and the exported rule asks both windows to be above the rate.
+    def sized(per_hour):
+        traffic = sizing.Traffic(per_hour, "hours", slo_target=0.999, slo_period="30d")
+        return sizing.size_metric(_metric(statistic="burn_rate"), traffic, BUDGET)
+
+    busy = sized(5000)  # 5,000 / 12 = 416.7 requests per 5m: one failure is (1/416.7)/0.001 = 2.4, not 14.4
+    assert busy["review"] is None
+    text = busy["sizing"]["derivation"]
+    assert "one failure there is a burn rate of 2.4," in text
+    assert f"at least {_failures_over(14.4, 5000 / 12, 0.999)} failures in the 5m window" in text  # > 6.0: 7
+    assert f"and {_failures_over(14.4, 5000, 0.999)} in the 1h window" in text  # > 72: 73
+    # 100 an hour: one failure is 10 over the 1h window and 1.67 over the 6h one, under 14.4 and 6: no page.
+    assert _failures_over(14.4, 100, 0.999) == 2 and _failures_over(6, 600, 0.999) == 4
+    assert sized(100)["review"] is None
+    # 60 an hour: one failure is (1/60)/0.001 = 16.7 over the 1h window, above 14.4, and 200 over 5m: it pages.
+    assert _failures_over(14.4, 60, 0.999) == 1
+    lonely = sized(60)["review"]
+    assert lonely and "one failure pages" in lonely and "burn rate of 16.7" in lonely
+
+
 @pytest.mark.parametrize("source", all_pipelines(), ids=lambda p: p.stem)
 def test_every_metric_is_sized_and_the_budget_holds(source):
     pipeline = load_pipeline(str(source))

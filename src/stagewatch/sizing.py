@@ -304,10 +304,27 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
                   f"{durations.format(within[0]['long_window_s'])} would fire at burn rate "
                   f"{_sig(within[0]['burn_rate'], 3)}, while the SLO is being met; use a longer period or a ticket")
     if budget_errors < 1:
-        review = review or (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} "
-                            f"short window: "
-                  f"a single failure exceeds the fast burn rate; consider a longer SLO period or a request-count floor")
-        derivation += f" At {_fmt(traffic.per_hour)} requests per hour the short window holds {_fmt(requests)}."
+        # Few requests per window: say how many failures it takes to page (SRE Workbook ch. 5: burn rate = error
+        # ratio / (1 - SLO)), and flag only when a single failure does it.
+        short, long = durations.format(fast["short_window_s"]), durations.format(fast["long_window_s"])
+        long_requests = traffic.per_hour * fast["long_window_s"] / HOUR
+        in_short = burn_rates.failures_to_exceed(fast["burn_rate"], requests, target)
+        in_long = burn_rates.failures_to_fire(fast, traffic.per_hour, target)
+        derivation += (
+            f" At {_fmt(traffic.per_hour)} requests per hour the {short} short window holds {_fmt(requests)}: one "
+            f"failure there is a burn rate of {_sig(burn_rates.single_failure_rate(requests, target), 3)}, and "
+            f"{_sig(burn_rates.single_failure_rate(long_requests, target), 3)} in the {long} long window "
+            f"({_fmt(long_requests)} requests); the page at {_sig(fast['burn_rate'], 3)} needs at least {in_short} "
+            f"failure{'s' if in_short > 1 else ''} in the {short} window and {in_long} in the {long} window.")
+        single = next((a for a in alerts if a["severity"] == "page"
+                       and burn_rates.failures_to_fire(a, traffic.per_hour, target) == 1), None)
+        if single is not None:
+            held = traffic.per_hour * single["long_window_s"] / HOUR
+            review = review or (
+                f"only {_fmt(held)} requests in the {durations.format(single['long_window_s'])} window: a single "
+                f"failure is a burn rate of {_sig(burn_rates.single_failure_rate(held, target), 3)} there, above the "
+                f"page's {_sig(single['burn_rate'], 3)}, so one failure pages; consider a longer SLO period or a "
+                f"request-count floor")
     return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
             "critical": _sig(fast["burn_rate"]), "review": review,
             "sizing": {"method": "error budget", "slo_target": target, "slo_period": durations.format(period_s),
