@@ -285,3 +285,29 @@ def test_budget_shares_sit_on_a_1_2_5_ladder_and_never_sum_past_the_budget():
     # a stage's share does not depend on another stage's count
     fewer = sizing.make_budget(metrics[:3] + metrics[4:], 1.0, 5.0, owners=["a", "b", "c", "pipeline"])
     assert fewer.share(metrics[0], "page") == budget.share(metrics[0], "page")
+
+
+def test_a_small_raise_to_the_noise_floor_is_noted_not_flagged():
+    # A mean shift's floor is z(alpha/2) sqrt(1/n + 1/m) (two-sided z-test), checked here with scipy's normal law.
+    # At 0.05 items an hour a 30d window holds 36 items against a reference of 4 windows (144), and the floor is
+    # about 0.148 reference standard deviations.
+    from scipy.stats import norm
+
+    def sized(critical):
+        metric = _metric(statistic="mean", params={}, critical=critical, warn=None, direction="both")
+        return sizing.size_metric(metric, sizing.Traffic(0.05, "months"), BUDGET)
+
+    slight, far = sized(0.145), sized(0.1)
+    for result in (slight, far):
+        block = result["sizing"]
+        assert (result["window"], block["samples_per_window"], block["reference_samples"]) == ("30d", 36, 144)
+        floor = norm.isf(block["alpha"] / 2) * math.sqrt(1 / 36 + 1 / 144)
+        assert floor == pytest.approx(block["noise_floor"], rel=2e-2)
+        assert result["critical"] == 0.15 >= floor
+    # 0.145 -> 0.15 is a raise of 3%, within the 10% tolerance: raised and said so, no review flag.
+    assert slight["review"] is None
+    assert "raised the critical threshold from 0.145 to 0.15" in slight["sizing"]["derivation"]
+    assert "a raise of 3%" in slight["sizing"]["derivation"]
+    # 0.1 -> 0.15 is a raise of 50%: the reviewer should see it.
+    assert far["review"] == "volume too low: even a 30d window needs a threshold of 0.15 instead of 0.1"
+    assert "raised the critical threshold from 0.1 to 0.15" in far["sizing"]["derivation"]

@@ -162,6 +162,21 @@ def round_up(x: float, digits: int = 2) -> float:
     return float(f"{math.ceil(x / scale - 1e-9) * scale:.{digits + 2}g}")
 
 
+# Our rule: a threshold raised to its noise floor by at most 10% of itself is raised and noted in the derivation,
+# but not flagged for review. Such raises come from rounding the floor up to two figures or from a floor a hair
+# above a threshold that the exact law still accepts; a flag for 0.04 -> 0.041 teaches reviewers to skip flags.
+RAISE_TOLERANCE = 0.10
+
+
+def material_raise(threshold: float, raised: float) -> bool:
+    """Whether raising ``threshold`` to ``raised`` is worth a reviewer's attention (more than RAISE_TOLERANCE).
+
+    >>> material_raise(0.04, 0.041), material_raise(0.25, 0.3)
+    (False, True)
+    """
+    return raised > threshold * (1 + RAISE_TOLERANCE) + 1e-12
+
+
 def _statistic(metric: dict[str, Any]) -> stats.Statistic:
     sides = 2 if metric["direction"] == "both" else 1
     tail = "below" if (metric.get("reads") or {}).get("condition") == "below_quantile" else "above"
@@ -370,10 +385,15 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                      f"{chosen.floor:.3g} at this window: expect false alarms")
     elif critical is not None and chosen.floor > critical:
         raised = round_up(chosen.floor)
-        notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at the "
-                     f"longest window")
-        review = review or (f"volume too low: even a {durations.format(chosen.window)} window needs a threshold of "
-                            f"{raised:g} instead of {critical:g}")
+        where = f"the {durations.format(chosen.window)} window" + ("" if chosen.sound else ", the longest tried")
+        if material_raise(critical, raised):
+            notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at {where}")
+            review = review or (f"volume too low: even a {durations.format(chosen.window)} window needs a threshold "
+                                f"of {raised:g} instead of {critical:g}")
+        else:
+            notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at {where} "
+                         f"(a raise of {raised / critical - 1:.0%}, within the {RAISE_TOLERANCE:.0%} that needs no "
+                         f"review)")
         critical = raised
     warn_alpha = warn_floor = None
     if warn is not None and chosen.n > 0:
