@@ -58,6 +58,25 @@ def test_conventional_psi_threshold_below_floor_lengthens_the_window():
     assert "lengthened the window" in result["sizing"]["derivation"]
     floor_1h = stats.PSI(bins=10).floor(2000, 2000 * 4, BUDGET.page_share / 168)
     assert floor_1h > 0.01
+    # 2,000 items in the 1h window are more than PSI's 1,000 (100 per bin), so the floor was the only reason.
+    assert "so that it has a noise floor under the threshold" in result["sizing"]["derivation"]
+    assert "samples per window this statistic needs" not in result["sizing"]["derivation"]
+
+
+def test_a_window_lengthened_for_samples_says_so():
+    # 2,400 items an hour give 600 in the 15m target window, fewer than the 1,000 a 10-bin PSI needs (100 per bin),
+    # while its noise floor there is far under 0.25: (n m / (n + m)) PSI follows a chi-square law with 9 degrees
+    # of freedom under no change (scipy's chi2). So the window is lengthened for the samples, not the floor.
+    from scipy.stats import chi2
+
+    result = sizing.size_metric(_metric(), sizing.Traffic(2_400, "minutes"), BUDGET)
+    assert result["window"] == "30m"
+    n, m = 600, 2_400 * 28 * 24
+    assert chi2.isf(BUDGET.page_share / (durations.WEEK / 900), 9) * (n + m) / (n * m) < 0.25
+    text = result["sizing"]["derivation"]
+    assert ("lengthened the window from the 15m target for change rate 'minutes' to 30m so that it holds the 1,000 "
+            "samples per window this statistic needs (the 15m window holds 600)") in text
+    assert "noise floor under the threshold" not in text
 
 
 def test_alpha_is_the_budget_share_over_evaluations():

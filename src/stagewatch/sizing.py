@@ -238,6 +238,26 @@ def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budg
     return _Trial(window, n, m, evaluations, alpha, math.nan, sound)
 
 
+def _why_longer(stat: stats.Statistic, metric: dict[str, Any], trials: list[_Trial], chosen: _Trial,
+                traffic: Traffic) -> str:
+    """Why the windows shorter than the chosen one were not used: too few samples for the statistic, a noise
+    floor above the critical threshold, or both (the note must give the reason that held)."""
+    at = trials.index(chosen)
+    if at == 0:  # a batch stage whose first whole number of runs lies past the target
+        return f" (the first whole number of {traffic.run_every} runs from the target)"
+    shorter = trials[at - 1]
+    few = shorter.n < stat.min_samples()
+    critical = metric.get("critical")
+    noisy = critical is not None and shorter.n > 0 and stat.false_alarm(critical, shorter.n, shorter.m) > shorter.alpha
+    samples = (f"the {stat.min_samples():,} samples per window this statistic needs (the "
+               f"{durations.format(shorter.window)} window holds {_fmt(shorter.n)})")
+    floor = "a noise floor under the threshold"
+    reason = (f"{samples} and {floor}" if few and noisy else samples if few else floor)
+    if not chosen.sound:
+        return f", the longest tried: no shorter window gives {reason}"
+    return f" so that it holds {reason}" if few else f" so that it has {reason}"
+
+
 def _with_floor(stat: stats.Statistic, trial: _Trial) -> _Trial:
     if math.isnan(trial.floor):
         trial.floor = stat.floor(trial.n, trial.m, trial.alpha)
@@ -367,11 +387,12 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                       f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
                       f"rate allows; a change would be seen late")
             notes.append(f"lengthened the window to {durations.format(chosen.window)}, past the "
-                         f"{durations.format(longest)} the change rate allows")
+                         f"{durations.format(longest)} the change rate allows"
+                         + _why_longer(stat, metric, trials, chosen, traffic).replace(" so that", ", so that", 1))
         elif chosen.window > target:
             notes.append(f"lengthened the window from the {durations.format(target)} target for change rate "
-                         f"'{traffic.change_rate}' to {durations.format(chosen.window)} so that the noise floor "
-                         f"stays under the threshold")
+                         f"'{traffic.change_rate}' to {durations.format(chosen.window)}"
+                         + _why_longer(stat, metric, trials, chosen, traffic))
     if chosen.n < stat.min_samples():
         review = (f"only {_fmt(chosen.n)} samples per {durations.format(chosen.window)} window, fewer than the "
                   f"{stat.min_samples()} this statistic needs; the check is unreliable at this volume")
