@@ -200,7 +200,7 @@ stages:
 
 PLAN_CHECKS = {
     "psi": "estimator.input.amount_drift", "chi_square": "estimator.input.desk_mix",
-    "ks": "estimator.output.value_drift", "proportion": "estimator.input.amount_missing",
+    "ks": "tickets.input.session_length", "proportion": "estimator.input.amount_missing",
     "quantile": "ranker.output.above_cutoff", "mean": "estimator.output.value_mean",
     "count": "tickets.output.record_count",
 }
