@@ -192,6 +192,15 @@ def test_replay_page_draws_a_timeline_per_check_whose_bars_are_its_firings(shift
         assert ("tl-critical" in classes) == (c["critical_firings"] > 0), c["id"]
         assert ("tl-warn" in classes) <= (c["warn_firings"] > 0), c["id"]  # a critical column hides a warn
     assert set(stage_groups(tree)) == {"probe", "spoilage_model"}
+    # the budget badge judges pages and tickets: the shift fires tickets far over their budget (150 a week against
+    # 5) while no page fires, so the badge is amber and says so, never a green "within budget"
+    figures = doc["pipeline"]
+    assert figures["pages_per_week"] <= figures["budget_pages_per_week"]
+    assert figures["tickets_per_week"] > figures["budget_tickets_per_week"]
+    budget = next(span for span in every(tree, "span") if span.get("class") == "budget")
+    badge = next(b for b in every(budget, "span") if b is not budget)
+    assert badge.get("class") == "badge v-warn"
+    assert texts(badge).strip() == "tickets over budget, pages within"
 
 
 # --- colour: every verdict has a word and a shape; contrast at WCAG AA ---------------------------------------

@@ -81,3 +81,30 @@ def test_a_real_browser_shows_the_page_on_screen_and_in_print(demo, name):
         pdf = browser.send("Page.printToPDF", {"printBackground": True})["data"]
         assert pdf.startswith("JVBERi0")  # base64 of "%PDF-"
         assert browser.problems() == []
+
+
+def _over(lines: list[str], prefix: str) -> bool:
+    """Whether the summary line "<prefix>: X replayed, ..., budget Y" states X above Y."""
+    line = next(x for x in lines if x.startswith(prefix))
+    return float(line.split(": ")[1].split(" replayed")[0]) > float(line.split("budget ")[1].split()[0])
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("name", ("replay.html", "replay-change.html"))
+def test_the_replay_budget_badge_agrees_with_the_pages_and_tickets_it_shows(demo, name):
+    # What the browser draws: the badge's computed colour is the palette's colour of the verdict the page's own
+    # figures imply (pages over budget: critical; tickets over budget alone: warn, amber; else ok).
+    from stagewatch.render_html import PALETTE
+
+    page = demo / name
+    with Browser(deadline_s=120) as browser:
+        browser.open(page.as_uri(), *SCREEN)
+        lines = browser.evaluate("[...document.querySelectorAll('main > ul:first-of-type > li')]"
+                                 ".map(li => li.textContent)")
+        pages, tickets = _over(lines, "pages per week"), _over(lines, "tickets per week")
+        verdict = "critical" if pages else "warn" if tickets else "ok"
+        colour = browser.evaluate("getComputedStyle(document.querySelector('.budget .badge')).color")
+        red, green, blue = (int(PALETTE[verdict][i:i + 2], 16) for i in (1, 3, 5))
+        assert colour == f"rgb({red}, {green}, {blue})", (lines, colour)
+        words = browser.evaluate("document.querySelector('.budget .badge').textContent")
+        assert ("tickets over budget" in words) == tickets and ("pages over budget" in words) == pages, words

@@ -127,3 +127,19 @@ def test_explain_suggests_the_closest_metric_ids(write, tmp_path, capsys):
     assert "did you mean load_cell.input.weight_g_drift," in err, err
     err = _err(capsys, ["explain", str(plan), "grade_asigner.input.weight_g_drift"])
     assert "did you mean grade_assigner.input.weight_g_drift," in err, err
+
+
+def test_a_typo_d_required_key_is_reported_once(write, capsys):
+    # 'servign' is 'serving' misspelt: one problem, on the typo's line, with the suggestion; no "required" line at
+    # the stage's start for the key the typo stands for.
+    path = write("pipeline.yaml", STAGE.replace("serving:", "servign:"))
+    line = next(n for n, x in enumerate(path.read_text().splitlines(), 1) if "servign:" in x)
+    err = _err(capsys, ["propose", str(path)])
+    assert err.count("servign") == 1 and "required property" not in err, err
+    assert f"{path}:{line}: stages.0: unknown key 'servign' (did you mean 'serving'?)" in err, err
+
+
+def test_a_missing_required_key_no_typo_explains_is_still_reported(write, capsys):
+    path = write("pipeline.yaml", "\n".join(x for x in STAGE.splitlines() if "serving:" not in x) + "\n    colour: blue\n")
+    err = _err(capsys, ["propose", str(path)])
+    assert "'serving' is a required property" in err and "unknown key 'colour'" in err, err

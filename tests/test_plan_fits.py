@@ -93,7 +93,7 @@ def test_first_response_at_the_entry_does_not_send_the_reader_upstream():
 # --- one check per signal ----------------------------------------------------------------------------------------
 
 def test_no_two_live_checks_read_one_signal_and_every_hand_off_side_is_still_seen():
-    for path in (demo_path(), PIPELINES / "parcel_hub.yaml"):
+    for path in (demo_path(), PIPELINES / "parcel_hub.yaml", PIPELINES / "bikeshare.yaml"):
         plan = _plan(path)
         assert not fold.duplicates(all_metrics(plan)), path
         metrics = {s["id"]: s["metrics"] for s in plan["stages"]}
@@ -109,6 +109,27 @@ def test_no_two_live_checks_read_one_signal_and_every_hand_off_side_is_still_see
     assert "grade_assigner.input.blemish_score_drift" in demo
     unknown = demo["variety_tagger.output.unknown_share"]
     assert unknown["severity"] == "page" and len(unknown["serves"]) == 2
+
+
+def test_a_value_column_gets_one_distribution_check_and_a_mean_check():
+    # PSI and KS both judge the whole shape of a column: one of them per column of a log; a mean shift judges
+    # location only and stays beside it.
+    plan = compose(Pipeline("p", [_stage(output="value", outputs=[FieldSpec("eta_min", "numeric")]),
+                                  _stage(id="t", kind="rule-based", output="records", upstream=["s"])]))
+    on_column = [m for m in all_metrics(plan) if m["id"].startswith("s.") and m["statistic"] in ("psi", "ks", "mean")
+                 and m["reads"] == {"column": "eta_min"}]
+    assert sorted((m["id"], m["statistic"]) for m in on_column) == [("s.output.value_drift", "psi"),
+                                                                      ("s.output.value_mean", "mean")]
+    drift = _by_id(plan)["s.output.value_drift"]
+    assert {r["metric"] for r in drift["serves"]} == {"s.output.eta_min_drift", "s.output.to_t_drift"}
+    # a duration handed over to a consumer that declares it: one PSI in the consumer's log, both sides alike
+    handed = compose(Pipeline("p", [_stage(output="value", outputs=[FieldSpec("wait", "duration")]),
+                                    _stage(id="t", output="score", upstream=["s"],
+                                           inputs=[FieldSpec("wait", "duration")])]))
+    assert not fold.duplicates(all_metrics(handed))
+    consumer = [(m["id"], m["statistic"]) for m in all_metrics(handed)
+                if m["id"].startswith("t.input.") and m["reads"] == {"column": "wait"}]
+    assert consumer == [("t.input.wait_drift", "psi")]
 
 
 def test_modality_checks_run_where_images_enter_and_again_after_the_gate_only():
@@ -136,6 +157,24 @@ def test_lint_flags_two_live_checks_on_one_signal(tmp_path):
     twin["note"] = "kept for the record"
     path.write_text(yaml.safe_dump(plan, sort_keys=False))
     assert not [f for f in lint_file(str(path)) if f.code == "duplicate-signal"]
+
+
+def test_lint_flags_psi_and_ks_on_one_column_but_not_a_mean_beside_them(tmp_path):
+    plan = _plan(demo_path())
+    stage = next(s for s in plan["stages"] if s["id"] == "blemish_scorer")
+    drift = next(m for m in stage["metrics"] if m["id"] == "blemish_scorer.output.score_drift")
+    shape = dict(drift, id="blemish_scorer.output.score_ks", statistic="ks", params={}, source="manual",
+                 status="accepted")
+    mean = dict(drift, id="blemish_scorer.output.score_mean", statistic="mean", params={}, source="manual",
+                status="accepted", direction="both")
+    for twin in (shape, mean):
+        twin.pop("serves", None)
+        stage["metrics"].append(twin)
+    path = tmp_path / "plan.yaml"
+    path.write_text(yaml.safe_dump(plan, sort_keys=False))
+    findings = [f for f in lint_file(str(path)) if f.code == "duplicate-signal"]
+    assert [f.subject for f in findings] == ["blemish_scorer.output.score_ks"]
+    assert "two distribution statistics (PSI and KS)" in findings[0].message
 
 
 # --- batch cadence, aggregation and whole-pipeline sizing ---------------------------------------------------------

@@ -58,6 +58,25 @@ def test_conventional_psi_threshold_below_floor_lengthens_the_window():
     assert "lengthened the window" in result["sizing"]["derivation"]
     floor_1h = stats.PSI(bins=10).floor(2000, 2000 * 4, BUDGET.page_share / 168)
     assert floor_1h > 0.01
+    # 2,000 items in the 1h window are more than PSI's 1,000 (100 per bin), so the floor was the only reason.
+    assert "so that it has a noise floor under the threshold" in result["sizing"]["derivation"]
+    assert "samples per window this statistic needs" not in result["sizing"]["derivation"]
+
+
+def test_a_window_lengthened_for_samples_says_so():
+    # 2,400 items an hour give 600 in the 15m target window, fewer than the 1,000 a 10-bin PSI needs (100 per bin),
+    # while its noise floor there is far under 0.25: (n m / (n + m)) PSI follows a chi-square law with 9 degrees
+    # of freedom under no change (scipy's chi2). So the window is lengthened for the samples, not the floor.
+    from scipy.stats import chi2
+
+    result = sizing.size_metric(_metric(), sizing.Traffic(2_400, "minutes"), BUDGET)
+    assert result["window"] == "30m"
+    n, m = 600, 2_400 * 28 * 24
+    assert chi2.isf(BUDGET.page_share / (durations.WEEK / 900), 9) * (n + m) / (n * m) < 0.25
+    text = result["sizing"]["derivation"]
+    assert ("lengthened the window from the 15m target for change rate 'minutes' to 30m so that it holds the 1,000 "
+            "samples per window this statistic needs (the 15m window holds 600)") in text
+    assert "noise floor under the threshold" not in text
 
 
 def test_alpha_is_the_budget_share_over_evaluations():
@@ -73,6 +92,36 @@ def test_burn_rate_sizing_uses_the_workbook_pairs():
              for p in result["sizing"]["burn_rate_alerts"]]
     assert pairs == [("1h", "5m", 14.4, "page"), ("6h", "30m", 6, "page"), ("3d", "6h", 1, "ticket")]
     assert result["critical"] == 14.4
+
+
+def _failures_over(rate, requests, target):
+    """The smallest whole count of failures whose share of ``requests`` is above rate x (1 - target), in exact
+    fractions: the Workbook's page condition (ch. 5, table 5-8), independent of the float arithmetic in sizing."""
+    from fractions import Fraction
+    bound = Fraction(str(rate)) * (1 - Fraction(str(target))) * Fraction(requests)
+    return math.floor(bound) + 1
+
+
+def test_burn_rate_flags_only_when_one_failure_pages():
+    # SRE Workbook ch. 5: burn rate = error ratio / (1 - SLO); at 99.9% the 30-day page pair is 14.4 over 1h with a
+    # 5m short window (table 5-8), and the exported rule asks both windows to be above the rate.
+    def sized(per_hour):
+        traffic = sizing.Traffic(per_hour, "hours", slo_target=0.999, slo_period="30d")
+        return sizing.size_metric(_metric(statistic="burn_rate"), traffic, BUDGET)
+
+    busy = sized(5000)  # 5,000 / 12 = 416.7 requests per 5m: one failure is (1/416.7)/0.001 = 2.4, not 14.4
+    assert busy["review"] is None
+    text = busy["sizing"]["derivation"]
+    assert "one failure there is a burn rate of 2.4," in text
+    assert f"at least {_failures_over(14.4, 5000 / 12, 0.999)} failures in the 5m window" in text  # > 6.0: 7
+    assert f"and {_failures_over(14.4, 5000, 0.999)} in the 1h window" in text  # > 72: 73
+    # 100 an hour: one failure is 10 over the 1h window and 1.67 over the 6h one, under 14.4 and 6: no page.
+    assert _failures_over(14.4, 100, 0.999) == 2 and _failures_over(6, 600, 0.999) == 4
+    assert sized(100)["review"] is None
+    # 60 an hour: one failure is (1/60)/0.001 = 16.7 over the 1h window, above 14.4, and 200 over 5m: it pages.
+    assert _failures_over(14.4, 60, 0.999) == 1
+    lonely = sized(60)["review"]
+    assert lonely and "one failure pages" in lonely and "burn rate of 16.7" in lonely
 
 
 @pytest.mark.parametrize("source", all_pipelines(), ids=lambda p: p.stem)
@@ -151,7 +200,7 @@ stages:
 
 PLAN_CHECKS = {
     "psi": "estimator.input.amount_drift", "chi_square": "estimator.input.desk_mix",
-    "ks": "estimator.output.value_drift", "proportion": "estimator.input.amount_missing",
+    "ks": "tickets.input.session_length", "proportion": "estimator.input.amount_missing",
     "quantile": "ranker.output.above_cutoff", "mean": "estimator.output.value_mean",
     "count": "tickets.output.record_count",
 }
@@ -255,3 +304,29 @@ def test_budget_shares_sit_on_a_1_2_5_ladder_and_never_sum_past_the_budget():
     # a stage's share does not depend on another stage's count
     fewer = sizing.make_budget(metrics[:3] + metrics[4:], 1.0, 5.0, owners=["a", "b", "c", "pipeline"])
     assert fewer.share(metrics[0], "page") == budget.share(metrics[0], "page")
+
+
+def test_a_small_raise_to_the_noise_floor_is_noted_not_flagged():
+    # A mean shift's floor is z(alpha/2) sqrt(1/n + 1/m) (two-sided z-test), checked here with scipy's normal law.
+    # At 0.05 items an hour a 30d window holds 36 items against a reference of 4 windows (144), and the floor is
+    # about 0.148 reference standard deviations.
+    from scipy.stats import norm
+
+    def sized(critical):
+        metric = _metric(statistic="mean", params={}, critical=critical, warn=None, direction="both")
+        return sizing.size_metric(metric, sizing.Traffic(0.05, "months"), BUDGET)
+
+    slight, far = sized(0.145), sized(0.1)
+    for result in (slight, far):
+        block = result["sizing"]
+        assert (result["window"], block["samples_per_window"], block["reference_samples"]) == ("30d", 36, 144)
+        floor = norm.isf(block["alpha"] / 2) * math.sqrt(1 / 36 + 1 / 144)
+        assert floor == pytest.approx(block["noise_floor"], rel=2e-2)
+        assert result["critical"] == 0.15 >= floor
+    # 0.145 -> 0.15 is a raise of 3%, within the 10% tolerance: raised and said so, no review flag.
+    assert slight["review"] is None
+    assert "raised the critical threshold from 0.145 to 0.15" in slight["sizing"]["derivation"]
+    assert "a raise of 3%" in slight["sizing"]["derivation"]
+    # 0.1 -> 0.15 is a raise of 50%: the reviewer should see it.
+    assert far["review"] == "volume too low: even a 30d window needs a threshold of 0.15 instead of 0.1"
+    assert "raised the critical threshold from 0.1 to 0.15" in far["sizing"]["derivation"]

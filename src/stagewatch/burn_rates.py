@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 from typing import TypedDict
 
 # The SRE Workbook's recommended starting points for a 30-day SLO (ch. 5, table 5-8), as (severity, long window,
@@ -43,7 +44,7 @@ def burn_rate_alerts(period_s: float) -> list[BurnRateAlert]:
     56m. Windows are whole minutes and at least ``SHORTEST_SLO_WINDOW_S``; the burn rate is then computed from the
     window actually used, so the budget share stays exact (a 1-day SLO pages at 5.76 over 5m, 2% of its budget).
 
-    >>> [(a["long_window_s"] // 60, a["burn_rate"]) for a in burn_rate_alerts(7 * 86400)]
+    >>> [(int(a["long_window_s"]) // 60, a["burn_rate"]) for a in burn_rate_alerts(7 * 86400)]
     [(14, 14.4), (84, 6.0), (1008, 1.0)]
     """
     out: list[BurnRateAlert] = []
@@ -53,6 +54,34 @@ def burn_rate_alerts(period_s: float) -> list[BurnRateAlert]:
         out.append({"severity": severity, "long_window_s": float(long_s), "short_window_s": float(short_s),
                     "burn_rate": round(burn_rate(share, long_s, period_s), 9), "budget_share": share})
     return out
+
+
+def single_failure_rate(requests: float, target: float) -> float:
+    """The burn rate one failure gives in a window of ``requests`` requests: its error ratio over the budget.
+
+    The SRE Workbook (ch. 5) defines burn rate as the error ratio divided by ``1 - SLO``: one failure in 417
+    requests at a 99.9% SLO is (1/417)/0.001, a burn rate of about 2.4.
+
+    >>> round(single_failure_rate(417, 0.999), 2)
+    2.4
+    """
+    return math.inf if requests <= 0 else 1 / (requests * (1 - target))
+
+
+def failures_to_exceed(burn_rate: float, requests: float, target: float) -> int:
+    """The fewest failures among ``requests`` whose error ratio exceeds ``burn_rate`` x (1 - target), as the
+    exported rule's ``>`` asks.
+
+    >>> failures_to_exceed(14.4, 5000, 0.999)  # more than 14.4 x 0.001 x 5,000 = 72
+    73
+    """
+    return math.floor(round(burn_rate * (1 - target) * requests, 9)) + 1
+
+
+def failures_to_fire(alert: BurnRateAlert, per_hour: float, target: float) -> int:
+    """The fewest failures that fire ``alert``: both windows must exceed its rate, and failures inside the short
+    window also lie in the long one, which holds more requests and so decides."""
+    return failures_to_exceed(alert["burn_rate"], per_hour * alert["long_window_s"] / 3600, target)
 
 
 def pages_within_budget(alerts: list[BurnRateAlert]) -> list[BurnRateAlert]:

@@ -71,19 +71,31 @@ def handoff_sides(metric: dict[str, Any]) -> list[dict[str, Any]]:
     return sides
 
 
+# Statistics that judge the whole shape of a numeric column. One of them per column of a log is enough: PSI and
+# KS on one column alert together on one change of shape. A mean shift judges location only and may sit beside
+# either.
+DISTRIBUTION = ("psi", "ks")
+
+
+def distribution_key(metric: dict[str, Any]) -> str | None:
+    """The column and log a PSI or KS check judges the shape of, whatever its statistic (None: not such a check)."""
+    if metric["statistic"] not in DISTRIBUTION:
+        return None
+    return signal_key({**metric, "statistic": "distribution", "params": {}})
+
+
 def duplicates(metrics: Iterable[dict[str, Any]]) -> list[tuple[dict[str, Any], dict[str, Any]]]:
-    """Pairs (first, later) of live metrics on one signal, for lint."""
+    """Pairs (first, later) of live metrics on one signal, or judging the shape of one column with PSI and KS, for
+    lint."""
     seen: dict[str, dict[str, Any]] = {}
     out = []
     for metric in metrics:
         if metric.get("status") in ("rejected", "stale"):
             continue
-        key = signal_key(metric)
-        if key is None:
-            continue
-        if key in seen:
-            out.append((seen[key], metric))
-        else:
+        for key in dict.fromkeys(k for k in (signal_key(metric), distribution_key(metric)) if k is not None):
+            if key in seen:
+                out.append((seen[key], metric))
+                break
             seen[key] = metric
     return out
 

@@ -157,9 +157,11 @@ def _duplicate_signals(doc: yamlio.Document) -> Iterator[Finding]:
     plan = doc.data
     where = {metric["id"]: path for path, metric, _ in _located(doc)}
     for first, later in fold.duplicates(all_metrics(plan)):
+        same = ("the same statistic" if first["statistic"] == later["statistic"] else
+                f"two distribution statistics ({first['statistic'].upper()} and {later['statistic'].upper()})")
         yield Finding(doc.path, doc.line_of((*where[later["id"]], "id")), "duplicate-signal",
-                      f"metrics '{first['id']}' and '{later['id']}' read the same column of the same log with the "
-                      "same statistic: one excursion would alert twice; keep one (reject the other with a note)",
+                      f"metrics '{first['id']}' and '{later['id']}' read the same column of the same log with "
+                      f"{same}: one excursion would alert twice; keep one (reject the other with a note)",
                       later["id"])
 
 

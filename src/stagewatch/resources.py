@@ -84,4 +84,25 @@ def validator(kind: str) -> Any:
     registry = Registry().with_resources(
         (schema(k)["$id"], Resource.from_contents(schema(k))) for k in SCHEMA_KINDS
         if (_PACKAGE / "schemas" / f"{k}.schema.json").exists())
-    return jsonschema.Draft202012Validator(schema(kind), registry=registry, format_checker=format_checker())
+    wording_validator = jsonschema.validators.extend(jsonschema.Draft202012Validator,
+                                                     {"required": _required_unless_misspelt})
+    return wording_validator(schema(kind), registry=registry, format_checker=format_checker())
+
+
+def _required_unless_misspelt(validator: Any, required: list[str], instance: Any, schema: dict[str, Any]) -> Any:
+    """jsonschema's ``required``, except for a missing key that an unknown key beside it is a near spelling of
+    (``outptu`` for ``output``): the unknown key's own error names it ("did you mean"), on the typo's line, so one
+    typo is reported once. A missing key that no typo explains is still reported. The compiled validator still
+    refuses the document, so this changes only the wording."""
+    import jsonschema
+
+    from stagewatch import wording
+
+    if not validator.is_type(instance, "object"):
+        return
+    allowed = schema.get("properties") or {}
+    unknown = [str(k) for k in instance if k not in allowed] if schema.get("additionalProperties") is False else []
+    explained = {near for key in unknown for near in wording.closest(key, allowed)}
+    for key in required:
+        if key not in instance and key not in explained:
+            yield jsonschema.ValidationError(f"{key!r} is a required property")

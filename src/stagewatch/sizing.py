@@ -3,7 +3,7 @@
 The check window must be short enough to catch a change at the stage's ``change_rate`` and long enough to hold the
 samples its statistic needs at the stage's volume. The pipeline's false-alarm budget is split evenly over its
 stages, then over each stage's statistical checks (a Bonferroni split of the expected count of false alarms per
-week, see :class:`Budget`); each check's per-evaluation
+week, see :class:`stagewatch.budget.Budget`); each check's per-evaluation
 alpha sets its noise floor, and no suggested threshold sits below that floor.
 """
 
@@ -15,6 +15,8 @@ from typing import Any
 
 from stagewatch import durations, stats
 from stagewatch import burn_rates
+# The budget's split lives in budget.py; plan.py and the tests reach it through this module.
+from stagewatch.budget import Budget, is_statistical, ladder_down, make_budget, owner_of  # noqa: F401
 from stagewatch.durations import HOUR, WEEK
 
 # Detection target and the longest acceptable window per change rate, in seconds (a design decision, documented
@@ -42,84 +44,6 @@ class Traffic:
     slo_period: str | None = None
     latency_slo_ms: float | None = None
     run_every: str | None = None  # a batch stage's period: windows are whole runs
-
-
-def ladder_down(x: float) -> float:
-    """``x`` rounded down to 1, 2 or 5 times a power of ten: a share that moves only when a count moves a lot."""
-    if x <= 0 or not math.isfinite(x):
-        return x
-    power = 10 ** math.floor(math.log10(x))
-    step = max(s for s in (1, 2, 5, 10) if s * power <= x * (1 + 1e-12))
-    return float(f"{step * power:.6g}")
-
-
-@dataclass
-class Budget:
-    """Expected false alarms per week allowed for one page check and for one ticket alert.
-
-    With ``per_owner`` (the plan's way), the budget is split evenly over the groups the description fixes (each
-    stage, and the whole pipeline), then evenly over the checks of each group, and each share is rounded down to
-    1, 2 or 5 times a power of ten. So a change inside one stage (a rejected check, a new volume) moves the shares
-    of that stage only, and a small change moves none; the sum of the shares never exceeds the budget.
-    """
-
-    pages_per_week: float
-    tickets_per_week: float
-    page_checks: int
-    ticket_alerts: int
-    groups: int = 1
-    per_owner: dict[str, tuple[int, int]] | None = None  # owner -> (page checks, ticket alerts)
-
-    @property
-    def page_share(self) -> float:
-        return self.pages_per_week / max(self.page_checks, 1)
-
-    @property
-    def ticket_share(self) -> float:
-        return self.tickets_per_week / max(self.ticket_alerts, 1)
-
-    def share(self, metric: dict[str, Any], kind: str) -> float:
-        """The expected false alarms per week this metric's ``kind`` ("page" or "ticket") alert may spend."""
-        if self.per_owner is None:
-            return self.page_share if kind == "page" else self.ticket_share
-        pages, tickets = self.per_owner.get(owner_of(metric), (0, 0))
-        if kind == "page":
-            return ladder_down(self.pages_per_week / self.groups / max(pages, 1))
-        return ladder_down(self.tickets_per_week / self.groups / max(tickets, 1))
-
-
-def owner_of(metric: dict[str, Any]) -> str:
-    return str(metric["id"]).split(".", 1)[0]
-
-
-def is_statistical(metric: dict[str, Any]) -> bool:
-    return metric["statistic"] in stats.STATISTICS
-
-
-def make_budget(metrics: list[dict[str, Any]], pages_per_week: float, tickets_per_week: float,
-                owners: list[str] | None = None) -> Budget:
-    """Count the checks that share each budget: page-severity criticals, and every ticket-level alert; with
-    ``owners`` (the stage ids and "pipeline"), per owner, for the split by group."""
-    page = ticket = 0
-    per_owner: dict[str, list[int]] = {o: [0, 0] for o in owners or []}
-    for m in metrics:
-        if not is_statistical(m) or m.get("status") in ("rejected", "stale"):
-            continue
-        counts = per_owner.setdefault(owner_of(m), [0, 0])
-        if m.get("critical") is not None:
-            if m["severity"] == "page":
-                page += 1
-                counts[0] += 1
-            else:
-                ticket += 1
-                counts[1] += 1
-        if m.get("warn") is not None:
-            ticket += 1
-            counts[1] += 1
-    if owners is None:
-        return Budget(pages_per_week, tickets_per_week, page, ticket)
-    return Budget(pages_per_week, tickets_per_week, page, ticket, groups=len(owners),
-                  per_owner={o: (c[0], c[1]) for o, c in per_owner.items()})
 
 
 def _sig(x: float | None, digits: int = 4) -> float | int | None:
@@ -160,6 +84,21 @@ def round_up(x: float, digits: int = 2) -> float:
         return x
     scale = 10 ** (math.floor(math.log10(x)) - digits + 1)
     return float(f"{math.ceil(x / scale - 1e-9) * scale:.{digits + 2}g}")
+
+
+# Our rule: a threshold raised to its noise floor by at most 10% of itself is raised and noted in the derivation,
+# but not flagged for review. Such raises come from rounding the floor up to two figures or from a floor a hair
+# above a threshold that the exact law still accepts; a flag for 0.04 -> 0.041 teaches reviewers to skip flags.
+RAISE_TOLERANCE = 0.10
+
+
+def material_raise(threshold: float, raised: float) -> bool:
+    """Whether raising ``threshold`` to ``raised`` is worth a reviewer's attention (more than RAISE_TOLERANCE).
+
+    >>> material_raise(0.04, 0.041), material_raise(0.25, 0.3)
+    (False, True)
+    """
+    return raised > threshold * (1 + RAISE_TOLERANCE) + 1e-12
 
 
 def _statistic(metric: dict[str, Any]) -> stats.Statistic:
@@ -221,6 +160,26 @@ def _trial(stat: stats.Statistic, metric: dict[str, Any], traffic: Traffic, budg
     # it exactly when its own probability is within alpha; the floor itself is computed for the chosen window.
     sound = enough and (critical is None or stat.false_alarm(critical, n, m) <= alpha)
     return _Trial(window, n, m, evaluations, alpha, math.nan, sound)
+
+
+def _why_longer(stat: stats.Statistic, metric: dict[str, Any], trials: list[_Trial], chosen: _Trial,
+                traffic: Traffic) -> str:
+    """Why the windows shorter than the chosen one were not used: too few samples for the statistic, a noise
+    floor above the critical threshold, or both (the note must give the reason that held)."""
+    at = trials.index(chosen)
+    if at == 0:  # a batch stage whose first whole number of runs lies past the target
+        return f" (the first whole number of {traffic.run_every} runs from the target)"
+    shorter = trials[at - 1]
+    few = shorter.n < stat.min_samples()
+    critical = metric.get("critical")
+    noisy = critical is not None and shorter.n > 0 and stat.false_alarm(critical, shorter.n, shorter.m) > shorter.alpha
+    samples = (f"the {stat.min_samples():,} samples per window this statistic needs (the "
+               f"{durations.format(shorter.window)} window holds {_fmt(shorter.n)})")
+    floor = "a noise floor under the threshold"
+    reason = (f"{samples} and {floor}" if few and noisy else samples if few else floor)
+    if not chosen.sound:
+        return f", the longest tried: no shorter window gives {reason}"
+    return f" so that it holds {reason}" if few else f" so that it has {reason}"
 
 
 def _with_floor(stat: stats.Statistic, trial: _Trial) -> _Trial:
@@ -304,10 +263,27 @@ def _size_burn_rate(metric: dict[str, Any], traffic: Traffic) -> dict[str, Any]:
                   f"{durations.format(within[0]['long_window_s'])} would fire at burn rate "
                   f"{_sig(within[0]['burn_rate'], 3)}, while the SLO is being met; use a longer period or a ticket")
     if budget_errors < 1:
-        review = review or (f"only {_fmt(requests)} requests in the {durations.format(fast['short_window_s'])} "
-                            f"short window: "
-                  f"a single failure exceeds the fast burn rate; consider a longer SLO period or a request-count floor")
-        derivation += f" At {_fmt(traffic.per_hour)} requests per hour the short window holds {_fmt(requests)}."
+        # Few requests per window: say how many failures it takes to page (SRE Workbook ch. 5: burn rate = error
+        # ratio / (1 - SLO)), and flag only when a single failure does it.
+        short, long = durations.format(fast["short_window_s"]), durations.format(fast["long_window_s"])
+        long_requests = traffic.per_hour * fast["long_window_s"] / HOUR
+        in_short = burn_rates.failures_to_exceed(fast["burn_rate"], requests, target)
+        in_long = burn_rates.failures_to_fire(fast, traffic.per_hour, target)
+        derivation += (
+            f" At {_fmt(traffic.per_hour)} requests per hour the {short} short window holds {_fmt(requests)}: one "
+            f"failure there is a burn rate of {_sig(burn_rates.single_failure_rate(requests, target), 3)}, and "
+            f"{_sig(burn_rates.single_failure_rate(long_requests, target), 3)} in the {long} long window "
+            f"({_fmt(long_requests)} requests); the page at {_sig(fast['burn_rate'], 3)} needs at least {in_short} "
+            f"failure{'s' if in_short > 1 else ''} in the {short} window and {in_long} in the {long} window.")
+        single = next((a for a in alerts if a["severity"] == "page"
+                       and burn_rates.failures_to_fire(a, traffic.per_hour, target) == 1), None)
+        if single is not None:
+            held = traffic.per_hour * single["long_window_s"] / HOUR
+            review = review or (
+                f"only {_fmt(held)} requests in the {durations.format(single['long_window_s'])} window: a single "
+                f"failure is a burn rate of {_sig(burn_rates.single_failure_rate(held, target), 3)} there, above the "
+                f"page's {_sig(single['burn_rate'], 3)}, so one failure pages; consider a longer SLO period or a "
+                f"request-count floor")
     return {"window": durations.format(fast["long_window_s"]), "warn": _sig(slow["burn_rate"]),
             "critical": _sig(fast["burn_rate"]), "review": review,
             "sizing": {"method": "error budget", "slo_target": target, "slo_period": durations.format(period_s),
@@ -335,11 +311,12 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                       f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
                       f"rate allows; a change would be seen late")
             notes.append(f"lengthened the window to {durations.format(chosen.window)}, past the "
-                         f"{durations.format(longest)} the change rate allows")
+                         f"{durations.format(longest)} the change rate allows"
+                         + _why_longer(stat, metric, trials, chosen, traffic).replace(" so that", ", so that", 1))
         elif chosen.window > target:
             notes.append(f"lengthened the window from the {durations.format(target)} target for change rate "
-                         f"'{traffic.change_rate}' to {durations.format(chosen.window)} so that the noise floor "
-                         f"stays under the threshold")
+                         f"'{traffic.change_rate}' to {durations.format(chosen.window)}"
+                         + _why_longer(stat, metric, trials, chosen, traffic))
     if chosen.n < stat.min_samples():
         review = (f"only {_fmt(chosen.n)} samples per {durations.format(chosen.window)} window, fewer than the "
                   f"{stat.min_samples()} this statistic needs; the check is unreliable at this volume")
@@ -353,10 +330,15 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
                      f"{chosen.floor:.3g} at this window: expect false alarms")
     elif critical is not None and chosen.floor > critical:
         raised = round_up(chosen.floor)
-        notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at the "
-                     f"longest window")
-        review = review or (f"volume too low: even a {durations.format(chosen.window)} window needs a threshold of "
-                            f"{raised:g} instead of {critical:g}")
+        where = f"the {durations.format(chosen.window)} window" + ("" if chosen.sound else ", the longest tried")
+        if material_raise(critical, raised):
+            notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at {where}")
+            review = review or (f"volume too low: even a {durations.format(chosen.window)} window needs a threshold "
+                                f"of {raised:g} instead of {critical:g}")
+        else:
+            notes.append(f"raised the critical threshold from {critical:g} to {raised:g}, the noise floor at {where} "
+                         f"(a raise of {raised / critical - 1:.0%}, within the {RAISE_TOLERANCE:.0%} that needs no "
+                         f"review)")
         critical = raised
     warn_alpha = warn_floor = None
     if warn is not None and chosen.n > 0:

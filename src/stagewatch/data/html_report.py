@@ -91,7 +91,8 @@ def render_check(result: CheckResult) -> str:
 
 def render_replay(result: Any, plan: dict[str, Any]) -> str:
     """The replay page; ``result`` is a :class:`stagewatch.data.replay.ReplayResult`."""
-    from stagewatch.data.replay_report import factor_words, injection_lines, planned, summary_lines
+    from stagewatch.data.replay_report import (budget_badge, factor_words, injection_lines, planned,
+                                                 summary_lines)
 
     by_stage: dict[str, list[Any]] = {}
     for c in result.checks:
@@ -118,4 +119,4 @@ def render_replay(result: Any, plan: dict[str, Any]) -> str:
                 start=format_time(result.start), end=format_time(result.end),
                 axis=charts.day_axis(result.start, result.end),
                 attribution_at=format_time(result.attribution_at), caveat=CAVEAT, origins=origins,
-                over=result.over_budget())
+                budget=budget_badge(result))
