@@ -303,10 +303,13 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
     if fixed:
         chosen = _with_floor(stat, _trial(stat, metric, traffic, budget, durations.parse(metric["window"])))
     else:
-        trials = [_trial(stat, metric, traffic, budget, w) for w in _windows(traffic, target)]
-        sound = [t for t in trials if t.sound]
-        chosen = _with_floor(stat, sound[0] if sound else trials[-1])
-        if sound and chosen.window > longest:
+        trials: list[_Trial] = []
+        for window in _windows(traffic, target):  # the shortest sound window, else the longest tried
+            trials.append(_trial(stat, metric, traffic, budget, window))
+            if trials[-1].sound:
+                break
+        chosen = _with_floor(stat, trials[-1])
+        if chosen.sound and chosen.window > longest:
             review = (f"volume too low for change rate '{traffic.change_rate}': the shortest sound window is "
                       f"{durations.format(chosen.window)}, longer than the {durations.format(longest)} this change "
                       f"rate allows; a change would be seen late")

@@ -44,34 +44,36 @@ def whole(x: float) -> int:
 _POINTS = 1500  # at most this many reference values are summed; beyond that an evenly spaced grid stands in
 
 
-def _span(law) -> tuple[np.ndarray, np.ndarray]:
-    """The values a discrete law takes outside its 1e-13 tails, with their probabilities.
+def _span(law, *shape: float) -> tuple[np.ndarray, np.ndarray]:
+    """The values the discrete ``law`` (a scipy.stats distribution, with its ``shape`` parameters) takes outside
+    its 1e-13 tails, with their probabilities.
 
     A wide law (a reference of millions of items) is summed on an evenly spaced grid of ``_POINTS`` values,
     each weighted by its probability times the spacing: the summands vary slowly over a step, so the sum keeps
-    about three significant figures.
+    about three significant figures. (The law is called with its parameters rather than frozen: freezing a
+    scipy distribution builds a new one, docstrings included, at every call.)
     """
-    low, high = law.ppf(_EDGE), law.isf(_EDGE)
+    low, high = law.ppf(_EDGE, *shape), law.isf(_EDGE, *shape)
     if not (np.isfinite(low) and np.isfinite(high)):  # scipy gives up on very large laws: 8 standard deviations
-        mean, sd = law.mean(), law.std()
+        mean, sd = law.mean(*shape), law.std(*shape)
         low, high = mean - 8 * sd, mean + 8 * sd
     low, high = int(max(low, 0)), int(high)
     if high - low + 1 <= _POINTS:
         values = np.arange(low, high + 1)
-        return values, law.pmf(values)
+        return values, law.pmf(values, *shape)
     values = np.unique(np.linspace(low, high, _POINTS).round())
     step = np.gradient(values)
-    return values, law.pmf(values) * step
+    return values, law.pmf(values, *shape) * step
 
 
 @lru_cache(maxsize=1024)
 def _binomial_span(m: int, p: float) -> tuple[np.ndarray, np.ndarray]:
-    return _span(st.binom(m, p))
+    return _span(st.binom, m, p)
 
 
 @lru_cache(maxsize=1024)
 def _poisson_span(mean: float) -> tuple[np.ndarray, np.ndarray]:
-    return _span(st.poisson(mean))
+    return _span(st.poisson, mean)
 
 
 def _on_distinct(f, k: np.ndarray, n: int, q: float) -> np.ndarray:
@@ -148,12 +150,11 @@ def count_tail(t: float, n: float, m: float | None, direction: str, shift: float
     """
     rate = n * (1 + shift)
     if m is None:
-        law = st.poisson(rate)
         total = 0.0
         if direction in ("above", "both"):
-            total += float(law.sf(math.floor(n * (1 + t) + _EPS)))
+            total += float(st.poisson.sf(math.floor(n * (1 + t) + _EPS), rate))
         if direction in ("below", "both") and t < 1:
-            total += float(law.cdf(math.ceil(n * (1 - t) - _EPS) - 1))
+            total += float(st.poisson.cdf(math.ceil(n * (1 - t) - _EPS) - 1, rate))
         return min(1.0, total)
     totals, weights = _poisson_span(rate + m)
     pi = rate / (rate + m)
