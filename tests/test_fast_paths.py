@@ -58,7 +58,7 @@ def test_one_pass_representer_writes_what_pyyaml_writes(data):
     assert yamlio.dump(data) == reference
 
 
-def test_shared_objects_fall_back_to_pyyaml_anchors():
+def test_shared_objects_are_written_with_pyyaml_anchors():
     shared = {"a": [1, 2]}
     data = {"first": shared, "second": shared, "list": [shared]}
     text = yamlio.dump(data)
@@ -144,3 +144,26 @@ def test_planning_commands_leave_the_cycle_collector_as_they_found_it(tmp_path):
         assert not gc.isenabled()
     finally:
         gc.enable()
+
+
+def _verdict(check, text):
+    root = yamlio._Loader(text).get_single_node()
+    try:
+        check(root, "doc.yaml")
+    except Exception as exc:  # noqa: BLE001 - the verdict is the message, compared between the two walks
+        return str(exc)
+    return None
+
+
+def test_the_short_walk_judges_documents_without_anchors_as_the_full_walk_does():
+    documents = [
+        "a: 1\nb: [1, 2, {c: .nan}]\n",  # NaN outside a sizing block
+        "sizing:\n  detectable_change: .inf\n",  # allowed there
+        "a: 1\nb: 2\na: 3\n",  # a duplicate key
+        "n: 1234567890123456789012\n",  # an integer too long
+        "x: " + "[" * 70 + "]" * 70 + "\n",  # too deep
+        "- {a: 1, b: {c: [1, 2, 3]}}\n- text\n",
+    ]
+    for text in documents:
+        assert _verdict(yamlio._check_plain_tree, text) == _verdict(yamlio._check_tree, text)
+    assert _verdict(yamlio._check_tree, documents[2]) is not None  # the fixtures do reach the checks

@@ -84,6 +84,36 @@ def _check_scalar(node: yaml.ScalarNode, path: str, derived: bool) -> None:
             raise _fail(node, path, f"'{node.value}' is not a finite number", "a finite number")
 
 
+def _check_plain_tree(root: yaml.Node, path: str) -> None:
+    """The checks of :func:`_check_tree` for a document without anchors, so without aliases: every node is met
+    once, and nothing needs to be remembered but the keys of the mapping at hand."""
+    scalar, mapping = yaml.ScalarNode, yaml.MappingNode
+    stack: list[tuple[yaml.Node, int, bool]] = [(root, 0, False)]
+    while stack:
+        node, depth, derived = stack.pop()
+        if depth > MAX_DEPTH:
+            raise _fail(node, path, f"blocks nested more than {MAX_DEPTH} deep", f"at most {MAX_DEPTH} levels")
+        kind = type(node)
+        if kind is scalar:
+            if node.tag in (_INT_TAG, _FLOAT_TAG):
+                _check_scalar(node, path, derived)
+            continue
+        if kind is mapping:
+            seen: dict[str, int] = {}
+            for knode, _ in node.value:
+                name = str(knode.value)
+                if name in seen:
+                    raise StagewatchError(f"key '{name}' appears twice in the same block (first on line "
+                                          f"{seen[name]})", file=path, line=knode.start_mark.line + 1,
+                                          expected="each key once")
+                seen[name] = knode.start_mark.line + 1
+            for knode, vnode in reversed(node.value):
+                stack.append((vnode, depth + 1, derived or knode.value == DERIVED_KEY))
+                stack.append((knode, depth + 1, derived))
+        else:
+            stack.extend((c, depth + 1, derived) for c in reversed(node.value))
+
+
 def _check_tree(root: yaml.Node | None, path: str) -> None:
     """One pass over the node graph, without recursion: duplicate keys, depth, aliases that refer to themselves
     or expand too far (a few lines can expand to billions of nodes), integers too long to convert, NaN and infinity
@@ -171,7 +201,10 @@ def parse(text: str, path: str) -> Document:
         loader = _Loader(text)
         try:
             root = loader.get_single_node()
-            _check_tree(root, path)
+            if root is not None and "&" not in text:  # no anchor, so no alias: the short walk
+                _check_plain_tree(root, path)
+            else:
+                _check_tree(root, path)
             try:
                 data = loader.construct_document(root) if root is not None else None
             except (ValueError, TypeError, OverflowError) as exc:  # a value of a resolved type that cannot be built
@@ -328,11 +361,7 @@ class _Dumper(_CachedResolve, getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  #
 
     def represent(self, data: Any) -> None:
         """PyYAML's ``represent``, with the nodes of plain data built in one pass (:mod:`stagewatch.yamlnodes`)."""
-        try:
-            node = yamlnodes.nodes(data, super().represent_data)
-        except yamlnodes.Shared:  # shared objects: PyYAML's representer writes the anchors and aliases
-            return super().represent(data)
-        self.serialize(node)
+        self.serialize(yamlnodes.nodes(data, super().represent_data))
         self.represented_objects, self.object_keeper, self.alias_key = {}, [], None
 
     def represent_data(self, data: Any) -> yaml.Node:
