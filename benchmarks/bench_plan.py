@@ -4,7 +4,9 @@ For the bundled demo and for generated pipelines (default 1,000 stages) it times
 `stagewatch` process: propose (a new plan), propose again (the re-propose of an existing plan), lint, render,
 explain, export --to prometheus and export --to checks; and `stagewatch --version` and `--help`. Beside each
 figure it prints the ratio to the plan's floor: a process that only loads the plan with PyYAML's C loader and
-dumps it again with the C dumper (what any tool that reads and writes that plan pays). It ends with the size of
+dumps it again with the C dumper (what any tool that reads and writes that plan pays), timed in turn with each
+command so that each ratio is taken pair by pair. The planning commands run without Python's cycle collector
+(see cli.py), so a second ratio is to the same floor with the collector off. It ends with the size of
 `alertmanager.yml` for chains of 1,000 and 2,000 stages, which must grow linearly. Not a test: it prints figures.
 
 Run with `make bench`, or `python benchmarks/bench_plan.py [--runs N] [demo] [SIZES...]`; each figure is the
@@ -14,6 +16,7 @@ take tens of seconds each).
 
 from __future__ import annotations
 
+import math
 import random
 import shutil
 import statistics
@@ -87,25 +90,46 @@ def first_metric(plan_path: Path) -> str:
     return next(m["id"] for s in plan["stages"] for m in s.get("metrics", []))
 
 
-def bench(name: str, description: Path, work: Path, runs: int) -> list[tuple[str, float, float]]:
+def paired(argv: list[str], floor: list[str], runs: int, setup: list[str] | None = None) -> tuple[float, float]:
+    """Median seconds of ``argv`` and the median of its ratio to ``floor``, timed in turn (floor, command, floor,
+    command ...), so that a machine whose speed drifts moves both sides of each ratio alike."""
+    seconds, ratios = [], []
+    for _ in range(runs):
+        base = timed(floor, 1)
+        took = timed(argv, 1, setup)
+        seconds.append(took)
+        ratios.append(took / base)
+    return statistics.median(seconds), statistics.median(ratios)
+
+
+def bench(name: str, description: Path, work: Path, runs: int) -> list[tuple[str, float, float, float]]:
     plan = work / f"{name}.plan.yaml"
     first = [STAGEWATCH, "propose", str(description), "-o", str(plan)]
     remove = [sys.executable, "-c", f"import os; os.path.exists({str(plan)!r}) and os.remove({str(plan)!r})"]
-    rows = [("propose (new plan)", timed(first, runs, setup=remove))]
-    rows.append(("propose (re-propose)", timed(first, runs)))
-    floor = timed([sys.executable, "-c", FLOOR, str(plan)], runs)
-    rows.append(("lint", timed([STAGEWATCH, "lint", str(plan)], runs)))
-    rows.append(("render", timed([STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.render")], runs)))
-    rows.append(("render --format html", timed([STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.html"),
-                                                "--format", "html"], runs)))
-    rows.append(("explain", timed([STAGEWATCH, "explain", str(plan), first_metric(plan)], runs)))
-    rows.append(("export --to prometheus", timed([STAGEWATCH, "export", str(plan), "--to", "prometheus", "-o",
-                                                  str(work / f"{name}.prom")], runs)))
-    rows.append(("export --to checks", timed([STAGEWATCH, "export", str(plan), "--to", "checks", "-o",
-                                              str(work / f"{name}.checks.json")], runs)))
+    subprocess.run(first, check=True, stdout=subprocess.DEVNULL)  # the plan the floor reads
+    floor = [sys.executable, "-c", FLOOR, str(plan)]
+    floor_off = [sys.executable, "-c", "import gc; gc.disable()\n" + FLOOR, str(plan)]
+    commands = [
+        ("propose (new plan)", first, remove),
+        ("propose (re-propose)", first, None),
+        ("lint", [STAGEWATCH, "lint", str(plan)], None),
+        ("render", [STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.render")], None),
+        ("render --format html", [STAGEWATCH, "render", str(plan), "-o", str(work / f"{name}.html"), "--format",
+                                  "html"], None),
+        ("explain", [STAGEWATCH, "explain", str(plan), first_metric(plan)], None),
+        ("export --to prometheus", [STAGEWATCH, "export", str(plan), "--to", "prometheus", "-o",
+                                    str(work / f"{name}.prom")], None),
+        ("export --to checks", [STAGEWATCH, "export", str(plan), "--to", "checks", "-o",
+                                str(work / f"{name}.checks.json")], None),
+    ]
+    rows = []
+    for step, argv, setup in commands:
+        seconds, ratio = paired(argv, floor, runs, setup)
+        _, ratio_off = paired(argv, floor_off, runs, setup)
+        rows.append((step, seconds, ratio, ratio_off))
     size = plan.stat().st_size / 2**20
-    return [(f"floor: load + dump of the plan ({size:.1f} MiB)", floor, 1.0)] + [
-        (step, seconds, seconds / floor) for step, seconds in rows]
+    return [(f"floor: load + dump of the plan ({size:.1f} MiB)", timed(floor, runs), 1.0, math.nan),
+            ("floor with the cycle collector off", timed(floor_off, runs), math.nan, 1.0)] + rows
 
 
 def chain_sizes(sizes: tuple[int, ...] = (1000, 2000)) -> list[tuple[int, int]]:
@@ -113,6 +137,10 @@ def chain_sizes(sizes: tuple[int, ...] = (1000, 2000)) -> list[tuple[int, int]]:
     from stagewatch.exporters.alertmanager import AM_HEADER, alertmanager_config
 
     return [(n, len((AM_HEADER + yamlio.dump(alertmanager_config(chain(n), []))).encode())) for n in sizes]
+
+
+def _ratio(x: float) -> str:
+    return "" if math.isnan(x) else f"{x:.2f}"
 
 
 def main(argv: list[str]) -> None:
@@ -147,9 +175,9 @@ def main(argv: list[str]) -> None:
                 title = f"generated, {size:,} stages, {edges:,} edges"
             count = runs or (3 if target == "demo" else 1)
             print(f"\n{title}, median of {count} run(s):")
-            print(f"  {'step':<48} {'seconds':>10} {'x floor':>8}")
-            for step, seconds, ratio in bench(target, description, work, count):
-                print(f"  {step:<48} {seconds:>10.3f} {ratio:>8.2f}")
+            print(f"  {'step':<48} {'seconds':>10} {'x floor':>8} {'x floor, collector off':>23}")
+            for step, seconds, ratio, ratio_off in bench(target, description, work, count):
+                print(f"  {step:<48} {seconds:>10.3f} {_ratio(ratio):>8} {_ratio(ratio_off):>23}")
         print("\nalertmanager.yml for a chain of stages:")
         sizes = chain_sizes()
         for n, size in sizes:
