@@ -99,7 +99,11 @@ def test_propose_given_a_plan_says_which_file_it_expected(write, tmp_path, capsy
     assert main(["propose", str(description), "-o", str(plan)]) == 0
     err = _err(capsys, ["propose", str(plan)])
     assert "this is a plan, not a pipeline description: give the pipeline description" in err, err
+    assert "the file the plan was proposed from" in err, err
     assert len(err.splitlines()) == 1
+    (tmp_path / "plan.pipeline.yaml").write_text(SMALL)  # where the interview writes the description
+    err = _err(capsys, ["propose", str(plan)])
+    assert f"most likely {tmp_path / 'plan.pipeline.yaml'}" in err, err
 
 
 def test_lint_given_a_description_says_which_file_it_expected(write, capsys):

@@ -7,6 +7,7 @@ raises :class:`StagewatchError` naming file and line for anything wrong.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import Any
 
 from stagewatch import durations, yamlio
@@ -143,9 +144,12 @@ def from_document(doc: yamlio.Document) -> Pipeline:
         raise StagewatchError("a pipeline description is a mapping with 'pipeline' and 'stages'", file=doc.path,
                               line=1, expected="pipeline: NAME, stages: [...]")
     if "plan_version" in doc.data:
-        raise StagewatchError("this is a plan, not a pipeline description: give the pipeline description (the "
-                              "interview writes it beside the plan as PLAN.pipeline.yaml)", file=doc.path,
-                              line=doc.line_of(["plan_version"]),
+        beside = Path(doc.path).with_name(Path(doc.path).stem + ".pipeline.yaml")
+        where = (f"here, most likely {beside}, which the interview wrote beside the plan" if beside.is_file() else
+                 "the file the plan was proposed from (the interview writes it beside the plan as "
+                 "PLAN.pipeline.yaml)")
+        raise StagewatchError(f"this is a plan, not a pipeline description: give the pipeline description "
+                              f"{where}", file=doc.path, line=doc.line_of(["plan_version"]),
                               expected="a pipeline description: pipeline: NAME, stages: [...]")
     yamlio.validate(doc, "pipeline")
     data = doc.data
