@@ -103,8 +103,7 @@ class SparkEngine:
             first = next((line for line in str(exc).splitlines() if line.strip()), type(exc).__name__)
             raise StagewatchError(f"Spark could not run the scan of {source.stage}: {first[:300]}",
                                   file=source.pattern, expected="a running Spark with the memory the scan needs "
-                                  "(calibrate's exact quantiles hold the reference's distinct values: raise "
-                                  "spark.executor.memory or calibrate a shorter period)") from None
+                                  "(grouped counts: raise spark.executor.memory)") from None
 
 
 def _remote(pattern: str) -> bool:
