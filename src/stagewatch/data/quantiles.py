@@ -7,7 +7,7 @@ x[j] + g (x[j+1] - x[j]), rounded as numpy rounds it (x[j+1] - (1 - g)(x[j+1] - 
 zero always +0.0 (an engine's MIN or GROUP BY may return either -0.0 or 0.0, which compare equal). The
 engines give only order statistics x[k]; the interpolation is done here, so a baseline has the same bits
 whichever engine made it (DuckDB's and Spark's own functions round the interpolation differently from each
-other, and DuckDB's differently from build to build).
+other and from numpy; DuckDB's rounding depends on how it was compiled).
 
 **How** (no value is held by the engine beyond one group per cell, and few come back):
 
@@ -35,9 +35,9 @@ from stagewatch.data import aggregates as ag
 from stagewatch.data.aggregates import Expr
 from stagewatch.errors import StagewatchError
 
-GRID = 1 << 16  # cells per grid: the engine holds at most this many groups (plus one) per query
+GRID = 1 << 12  # cells per grid: the engine holds at most this many groups (plus one) per cell being cut
 FETCH_AT_MOST = 1024  # rows in a cell whose values are fetched rather than cut again
-GRIDS = 3  # grids of 2^16, 2^32 and 2^48 cells: floor() stays an exact integer in a DOUBLE and a BIGINT
+GRIDS = 4  # grids of 2^12, 2^24, 2^36 and 2^48 cells: floor() stays an exact integer in a DOUBLE and a BIGINT
 
 
 def interpolate(low: float, high: float, g: float) -> float:
@@ -130,7 +130,7 @@ def _runs(offsets: set[int]) -> list[tuple[int, int]]:
 
 def _split_query(rows: Rows, value: Expr, grids: Sequence[Expr], wanted: dict[tuple[int, ...], set[int]]) -> Expr:
     """Counts of the cells of the last grid within the parents (``wanted``: parent path to the offsets of the
-    ranks sought within it), only the cells holding one of those offsets."""
+    ranks sought within it), only the cells holding one of the offsets sought (in any parent)."""
     names = _names(len(grids))
     inner = rows.select(*[exp.alias_(g.copy(), name) for g, name in zip(grids, names)],
                         exp.alias_(ag.rows(), "n"), exp.alias_(exp.func("min", value.copy()), "low"),
@@ -144,13 +144,12 @@ def _split_query(rows: Rows, value: Expr, grids: Sequence[Expr], wanted: dict[tu
                                              end="CURRENT ROW"))
     counted = exp.select(*[exp.column(c) for c in [*names, "n", "low", "high"]],
                          exp.alias_(running, "upto")).from_(inner.subquery("cells"))
-    holds = []
-    for parent, offsets in sorted(wanted.items()):
-        same = [exp.EQ(this=exp.column(name), expression=exp.Literal.number(c)) for name, c in zip(names, parent)]
-        for first, last in _runs(offsets):  # a cell holds one of first..last
-            holds.append(exp.and_(*same, exp.LTE(this=exp.column("upto") - exp.column("n"),
-                                                 expression=exp.Literal.number(last)),
-                                  exp.GT(this=exp.column("upto"), expression=exp.Literal.number(first))))
+    # Only the offsets, not the parents: an equality on a parent's cell would be pushed into the scan and
+    # computed for every row. Each parent's cells holding any of the offsets come back; the caller keeps its own.
+    offsets = set().union(*wanted.values())
+    holds = [exp.and_(exp.LTE(this=exp.column("upto") - exp.column("n"), expression=exp.Literal.number(last)),
+                      exp.GT(this=exp.column("upto"), expression=exp.Literal.number(first)))
+             for first, last in _runs(offsets)]  # a cell holds one of first..last
     return (exp.select(*[exp.column(c) for c in [*names, "n", "low", "high", "upto"]])
             .from_(counted.subquery("counted")).where(exp.or_(*holds))
             .order_by(*[exp.Literal.number(i + 1) for i in range(len(names))]))
