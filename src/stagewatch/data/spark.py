@@ -91,7 +91,8 @@ class SparkEngine:
                               time_column=time_column, table=where.text if where.kind == "table" else None)
 
     def define(self, view: str, query: Any) -> None:
-        raise StagewatchError("--inject runs on the DuckDB engine", expected="replay --inject without --engine spark")
+        """A temporary view of our own naming (``--inject`` changes)."""
+        self.spark.sql(f"CREATE OR REPLACE TEMP VIEW {view} AS {render(query, self.dialect)}")  # view names are ours
 
     def rows(self, source: sources.Source, query: Any) -> list[tuple[Any, ...]]:
         from stagewatch.data.scan import pushdown
