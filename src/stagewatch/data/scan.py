@@ -169,6 +169,7 @@ def profile(engine: Any, source: Source, numeric: dict[str, tuple[Expr, list[flo
     items: list[Expr] = []
     names = list(numeric)
     where = period(start, end)
+    assert where is not None  # the period always requires a readable time
     for i, name in enumerate(names):
         value, _ = numeric[name]
         clean = exp.Case(ifs=[exp.If(this=ag.finite(value), true=value.copy())])
