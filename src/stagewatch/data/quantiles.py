@@ -13,8 +13,8 @@ other and from numpy; DuckDB's rounding depends on how it was compiled).
 
 1. The range [min, max] is cut into ``GRID`` equal cells (``floor((v/4 - min/4) * scale)``: monotone in v, so
    each cell holds a run of the sorted values). One ``GROUP BY`` counts the rows of every cell with their min
-   and max, and a running sum over the cells (a window) keeps only the cells that hold a wanted rank: at most
-   one row per rank comes back, with the count before it.
+   and max, and a running sum over the cells (a window) keeps only the cells that hold a wanted rank: a row per
+   rank comes back (per rank and cell being cut, in a finer grid), with the count before it.
 2. A cell whose min equals its max gives its ranks outright; one with at most ``FETCH_AT_MOST`` rows has its
    distinct values fetched, ordered, with their counts; a larger one is cut again by a grid ``GRID`` times
    finer, counted only within the cells being cut (up to ``GRIDS`` grids; past that the values are fetched).
