@@ -122,3 +122,39 @@ def test_several_sizes_print_a_detection_delay_table(store, capsys):
     assert code == 0 and [r["change"].split(":")[1].split("@")[0] for r in rows] == ["0.5", "1", "3"]
     delays = [r["detection_delay_s"]["probe.input.level_shift"] for r in rows]
     assert delays[2] is not None and all(d is None or d >= delays[2] for d in delays)
+
+
+def _draws(micros: np.ndarray) -> np.ndarray:
+    """The injection's row draw as its docstring defines it, in numpy (int64: every product stays under 2^63)."""
+    p = 2147483647
+    x = np.mod(micros, p)  # numpy's mod is non-negative for a positive divisor, as ((u % p) + p) % p
+    x = np.mod(x * 48271, p)
+    x = np.mod(x * x + 1013904223, p)
+    return x.astype(float) / float(p)
+
+
+@pytest.mark.parametrize("kind", ["volume", "missing"])
+def test_injected_rows_are_those_the_documented_draw_picks(store, kind):
+    """The rows a `volume` change drops (or a `missing` change empties) are exactly those whose draw, computed
+    in numpy from the timestamps DuckDB reads from the file, falls below the share, from the change on."""
+    from stagewatch.data import inject
+    from stagewatch.data.engines import DuckDBEngine, Location
+
+    _, _, paths = store
+    at, share = T0 + 3 * DAY, 0.3
+    engine = DuckDBEngine()
+    source = engine.open("probe", Location("data", paths["probe"]), "timestamp", 0)
+    change = inject.parse(f"probe.temp_c={kind}:{share}@{format_time(at)}")
+    changed = inject.apply(engine, source, change, {})
+    con = duckdb.connect()
+    micros, temp = (np.array(v) for v in zip(*con.execute(
+        f"SELECT epoch_us(timestamp), temp_c IS NULL FROM '{paths['probe']}' ORDER BY 1").fetchall()))
+    picked = (micros >= at * 1e6) & (_draws(micros.astype(np.int64)) < share)
+    assert 0.2 < picked[micros >= at * 1e6].mean() < 0.4
+    if kind == "volume":
+        kept = [r[0] for r in engine.con.execute(f"SELECT epoch_us(timestamp) FROM {changed.view} ORDER BY 1").fetchall()]
+        assert kept == micros[~picked].tolist()
+    else:
+        empty = [r[0] for r in engine.con.execute(f"SELECT temp_c IS NULL FROM {changed.view} "
+                                                  f"ORDER BY epoch_us(timestamp)").fetchall()]
+        assert empty == (picked | temp.astype(bool)).tolist()

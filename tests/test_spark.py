@@ -114,6 +114,19 @@ def test_spark_counts_equal_duckdb_counts_for_check_and_replay(spark, logs, tmp_
     _integers_exact(counts_a, counts_b)
 
 
+def test_an_injected_change_replays_alike_on_spark(spark, logs, tmp_path):
+    """replay --inject on Spark: the same rows picked (the draw is integer arithmetic both engines compute), so
+    the same counts query by query and the same detection."""
+    plan, paths, base, _ = logs
+    change = "probe.temp_c=missing:0.4@2026-03-13T00:00:00Z"
+    args = ["replay", str(plan), "--baseline", str(base), *data_args(paths), *PERIOD, "--format", "json",
+            "--inject", change, "-o", str(tmp_path / "inject.json")]
+    a, b, counts_a, counts_b = _both(args, tmp_path, "inject")
+    assert a == b and counts_a.keys() == counts_b.keys()
+    assert all(_same(counts_a[k], counts_b[k]) for k in counts_a)
+    _integers_exact(counts_a, counts_b)
+
+
 def test_spark_verdicts_equal_duckdb_verdicts(spark, logs, tmp_path, capsys):
     plan, paths, base, _ = logs
     docs = []
@@ -136,6 +149,11 @@ def test_a_baseline_calibrated_on_spark_equals_duckdbs(spark, logs, tmp_path):
                  "--engine", "spark"]) == 0
     one = json.loads((base / "baseline.json").read_text())["baseline"]
     two = json.loads((tmp_path / "b" / "baseline.json").read_text())["baseline"]
+    edges = [(stage, check, key) for stage in one["stages"] for check, ref in one["stages"][stage]["checks"].items()
+             for key in ("edges", "edge") if key in ref]
+    assert len(edges) >= 2  # quantile edges are exact order statistics interpolated on the driver: the same bits
+    for stage, check, key in edges:
+        assert one["stages"][stage]["checks"][check][key] == two["stages"][stage]["checks"][check][key], check
     for stage in one["stages"]:
         a, b = one["stages"][stage], two["stages"][stage]
         assert a.keys() == b.keys()

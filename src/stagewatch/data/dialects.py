@@ -4,8 +4,9 @@ dialect shares mapped here.
 Everything else in a query is portable by construction (:mod:`stagewatch.data.aggregates`): finiteness is
 ``v - v = 0`` (false for NaN and infinity under both IEEE comparison and the "NaN is largest" ordering of DuckDB,
 Spark, PostgreSQL and Snowflake), out of range is ``NOT (v >= lo AND v <= hi)``, and counts are sums of
-``CASE WHEN``. What differs per dialect: microseconds since the epoch of a timestamp (``EPOCH_US`` in the tree)
-and exact quantiles (``exp.Quantile`` in the tree; calibration only, on DuckDB and Spark).
+``CASE WHEN``. What differs per dialect: microseconds since the epoch of a timestamp (``EPOCH_US`` in the tree).
+Calibrate's exact quantiles need no function of their own: they come from grouped counts
+(:mod:`stagewatch.data.quantiles`).
 """
 
 from __future__ import annotations
@@ -48,8 +49,6 @@ def _rewrite(dialect: str, node: exp.Expression) -> exp.Expression:
         return _epoch_us(node.expressions[0], dialect)
     if isinstance(node, exp.TryCast) and dialect == "spark":  # TRY_CAST, not CAST: ANSI mode would fail on text
         node.set("safe", True)
-    if isinstance(node, exp.Quantile) and dialect == "duckdb":  # exact and interpolated, as Spark's PERCENTILE
-        return exp.Anonymous(this="quantile_cont", expressions=[node.this, node.args["quantile"]])
     return node
 
 

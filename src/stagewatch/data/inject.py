@@ -2,8 +2,9 @@
 
 Kinds: ``shift`` (add SIZE reference standard deviations), ``scale`` (stretch deviations from the reference mean
 by SIZE), ``swap`` (SIZE is ``a/b``: the two categories trade places), ``missing`` (a share SIZE of rows lose the
-value), ``volume`` (a share SIZE of rows disappear). Rows are picked by a hash of their timestamp, so a replay is
-repeatable. The change is a view over the log; the files are never touched.
+value), ``volume`` (a share SIZE of rows disappear). Rows are picked by a number drawn from their timestamp in
+integer arithmetic that every engine computes alike (:func:`draw`), so a replay is repeatable and picks the same
+rows on DuckDB and on Spark. The change is a view over the log; the files are never touched.
 """
 
 from __future__ import annotations
@@ -73,10 +74,34 @@ def parse(text: str) -> Injection:
     return Injection(match["stage"], match["column"], kind, size, at, text)
 
 
-def _draw() -> exp.Expression:
-    """A repeatable number in [0, 1) per row, from a hash of its timestamp."""
-    hashed = exp.func("hash", exp.column(TS))
-    return exp.Div(this=exp.paren(exp.Mod(this=hashed, expression=ag.lit(1000003))), expression=ag.lit(1000003.0))
+PRIME = 2147483647  # 2^31 - 1: every product below stays under 2^63, so no engine overflows
+_MIX = (48271, 1013904223)
+
+
+def draw() -> exp.Expression:
+    """A repeatable number in [0, 1) per row, from its timestamp: the whole microseconds ``u`` since the epoch,
+    ``x = u mod p`` (made non-negative), then ``x = (x * 48271) mod p``, ``x = (x * x + 1013904223) mod p`` (the
+    square makes the steps non-linear, so rows close in time do not get draws in step) and ``x / p``, p = 2^31 - 1.
+    BIGINT arithmetic and one division: the same number on every engine (:func:`draw_of` is the same in Python)."""
+    micros = exp.cast(exp.func("round", exp.Mul(this=exp.column(TS), expression=exp.Literal.number(1000000))),
+                      "BIGINT")
+    p = exp.Literal.number(PRIME)
+
+    def mod(x: Expr) -> Expr:
+        return exp.paren(exp.Mod(this=exp.paren(x), expression=p.copy()))
+
+    x = mod(exp.Add(this=mod(micros), expression=p.copy()))
+    x = mod(exp.Mul(this=x, expression=exp.Literal.number(_MIX[0])))
+    x = mod(exp.Add(this=exp.Mul(this=x, expression=x.copy()), expression=exp.Literal.number(_MIX[1])))
+    return exp.Div(this=exp.cast(x, "DOUBLE"), expression=exp.cast(p.copy(), "DOUBLE"))
+
+
+def draw_of(micros: int) -> float:
+    """:func:`draw` for a timestamp of ``micros`` microseconds since the epoch, in Python."""
+    x = ((micros % PRIME) + PRIME) % PRIME  # Python's % is already non-negative: the same number
+    x = (x * _MIX[0]) % PRIME
+    x = (x * x + _MIX[1]) % PRIME
+    return x / PRIME
 
 
 def apply(engine: Any, source: Source, injection: Injection, reference: dict[str, Any]) -> Source:
@@ -105,19 +130,19 @@ def apply(engine: Any, source: Source, injection: Injection, reference: dict[str
                                 exp.If(this=exp.EQ(this=text.copy(), expression=ag.lit(b)), true=ag.lit(a))],
                            default=text.copy())
     elif injection.kind == "missing":
-        changed = exp.Case(ifs=[exp.If(this=exp.LT(this=_draw(), expression=ag.lit(injection.number)),
+        changed = exp.Case(ifs=[exp.If(this=exp.LT(this=draw(), expression=ag.lit(injection.number)),
                                        true=exp.null())], default=value)
     else:
-        where = exp.not_(exp.and_(after.copy(), exp.LT(this=_draw(), expression=ag.lit(injection.number))))
-    items: list[Expr] = [exp.Star()]
-    if changed is not None:
-        new = exp.Case(ifs=[exp.If(this=after.copy(), true=changed)], default=ag.col(injection.column))
-        star = exp.Star(**{"replace": [exp.alias_(new, injection.column, quoted=True)]})
-        items = [star]
-    query = exp.select(*items).from_(exp.to_table(source.view))
+        where = exp.not_(exp.and_(after.copy(), exp.LT(this=draw(), expression=ag.lit(injection.number))))
+    # every column by name (``SELECT * REPLACE`` is DuckDB's own), the changed one replaced
+    items: list[Expr] = [exp.alias_(exp.Case(ifs=[exp.If(this=after.copy(), true=changed)],
+                                             default=ag.col(name)), name, quoted=True)
+                         if changed is not None and name == injection.column else ag.col(name)
+                         for name in source.columns]
+    query = exp.select(*items, exp.column(TS)).from_(exp.to_table(source.view))
     if where is not None:
         query = query.where(where)
     view = source.view + "_changed"
-    engine.define(view, query)  # DuckDB only: the row draw is DuckDB's hash
+    engine.define(view, query)
     return Source(stage=source.stage, pattern=source.pattern, paths=source.paths, view=view,
                   columns=source.columns, time_column=source.time_column, files=source.files)

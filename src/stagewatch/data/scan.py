@@ -14,6 +14,7 @@ from typing import Any, Sequence
 from sqlglot import exp
 
 from stagewatch.data import aggregates as ag
+from stagewatch.data import quantiles
 from stagewatch.data.aggregates import Expr
 from stagewatch.data.sources import TS, Source
 
@@ -58,15 +59,20 @@ def _within(query: Any, start: float | None, end: float | None) -> Any:
 
 
 def pushdown(query: Any, source: Source) -> Any:
-    """The query with a looser filter on the stored time column added, for an engine that reads files: the
-    exact filter is on UTC seconds computed from it, which no file reader can use to skip row groups."""
-    start, end = query.meta.get("period", (None, None))
-    parts: list[Expr] = []
-    if start is not None and (low := _stored(source, start, -2.0)) is not None:
-        parts.append(exp.GTE(this=ag.col(source.time_column), expression=low))
-    if end is not None and (high := _stored(source, end, 2.0)) is not None:
-        parts.append(exp.LTE(this=ag.col(source.time_column), expression=high))
-    return query.copy().where(*parts, append=True) if parts else query
+    """The query with a looser filter on the stored time column added to each ``SELECT`` that reads the log
+    (a nested one too), for an engine that reads files: the exact filter is on UTC seconds computed from it,
+    which no file reader can use to skip row groups."""
+    tree = query.copy()
+    for node in list(tree.find_all(exp.Select)):
+        start, end = node.meta.get("period", (None, None))
+        parts: list[Expr] = []
+        if start is not None and (low := _stored(source, start, -2.0)) is not None:
+            parts.append(exp.GTE(this=ag.col(source.time_column), expression=low))
+        if end is not None and (high := _stored(source, end, 2.0)) is not None:
+            parts.append(exp.LTE(this=ag.col(source.time_column), expression=high))
+        if parts:
+            node.where(*parts, append=True, copy=False)
+    return tree
 
 
 def bucket_of(end: float, step: float) -> Expr:
@@ -156,28 +162,40 @@ def hourly(engine: Any, source: Source, start: float | None, end: float | None) 
 
 def profile(engine: Any, source: Source, numeric: dict[str, tuple[Expr, list[float]]],
             categorical: list[str], start: float | None, end: float | None, limit: int) -> dict[str, Any]:
-    """Quantiles (exact, interpolated), moments and ranges of numeric expressions; category frequencies."""
+    """Quantiles (exact, :mod:`stagewatch.data.quantiles`), moments and ranges of numeric expressions; category
+    frequencies. Moments and ranges of every expression come from one query; the quantiles of each distinct
+    expression from a few grouped counts of their own, one expression at a time."""
     out: dict[str, Any] = {}
     items: list[Expr] = []
     names = list(numeric)
+    where = period(start, end)
+    assert where is not None  # the period always requires a readable time
     for i, name in enumerate(names):
-        value, probs = numeric[name]
+        value, _ = numeric[name]
         clean = exp.Case(ifs=[exp.If(this=ag.finite(value), true=value.copy())])
-        quantiles = exp.Quantile(this=clean.copy(), quantile=exp.Array(expressions=[ag.lit(p) for p in probs or [0.5]]))
-        items += [exp.alias_(quantiles, f"q{i}"), exp.alias_(exp.func("avg", clean.copy()), f"mean{i}"),
+        items += [exp.alias_(exp.func("avg", clean.copy()), f"mean{i}"),
                   exp.alias_(exp.func("stddev_samp", clean.copy()), f"sd{i}"),
                   exp.alias_(exp.func("min", clean.copy()), f"min{i}"), exp.alias_(exp.func("max", clean.copy()), f"max{i}"),
                   exp.alias_(exp.Count(this=clean.copy()), f"n{i}")]
     if items:
-        query = exp.select(*items).from_(exp.to_table(source.view))
-        where = period(start, end)
-        if where is not None:
-            query = _within(query.where(where), start, end)
+        query = _within(exp.select(*items).from_(exp.to_table(source.view)).where(where.copy()), start, end)
         found = engine.rows(source, query)
         row = found[0] if found else [None] * len(items)
+        rows = quantiles.Rows(run=lambda q: engine.rows(source, q), view=source.view, where=where,
+                              period=(start, end), file=source.pattern)
+        levels: dict[str, list[float]] = {}  # expression text -> levels wanted, over every check reading it
+        for name in names:
+            value, probs = numeric[name]
+            levels.setdefault(ag.sql(value), []).extend(probs)
+        computed: dict[str, dict[float, float]] = {}
         for i, name in enumerate(names):
-            q, mean, sd, lo, hi, n = row[6 * i: 6 * i + 6]
-            out[name] = {"quantiles": [float(x) for x in q or []] if numeric[name][1] else [],
+            value, probs = numeric[name]
+            mean, sd, lo, hi, n = row[5 * i: 5 * i + 5]
+            text = ag.sql(value)
+            if probs and text not in computed:
+                wanted = sorted(set(levels[text]))
+                computed[text] = dict(zip(wanted, quantiles.exact(rows, value, wanted, int(n or 0), lo, hi)))
+            out[name] = {"quantiles": [computed[text][p] for p in probs] if probs and computed[text] else [],
                          "mean": mean, "sd": sd, "min": lo, "max": hi, "n": int(n or 0)}
     for column in categorical:
         out[f"categories:{column}"] = _frequent(engine, source, column, None, start, end, limit)

@@ -91,7 +91,8 @@ class SparkEngine:
                               time_column=time_column, table=where.text if where.kind == "table" else None)
 
     def define(self, view: str, query: Any) -> None:
-        raise StagewatchError("--inject runs on the DuckDB engine", expected="replay --inject without --engine spark")
+        """A temporary view of our own naming (``--inject`` changes)."""
+        self.spark.sql(f"CREATE OR REPLACE TEMP VIEW {view} AS {render(query, self.dialect)}")  # view names are ours
 
     def rows(self, source: sources.Source, query: Any) -> list[tuple[Any, ...]]:
         from stagewatch.data.scan import pushdown
@@ -103,8 +104,7 @@ class SparkEngine:
             first = next((line for line in str(exc).splitlines() if line.strip()), type(exc).__name__)
             raise StagewatchError(f"Spark could not run the scan of {source.stage}: {first[:300]}",
                                   file=source.pattern, expected="a running Spark with the memory the scan needs "
-                                  "(calibrate's exact quantiles hold the reference's distinct values: raise "
-                                  "spark.executor.memory or calibrate a shorter period)") from None
+                                  "(grouped counts: raise spark.executor.memory)") from None
 
 
 def _remote(pattern: str) -> bool:
