@@ -129,3 +129,34 @@ def test_thresholds_from_data_never_lower_a_threshold_unless_the_description_ask
 
         assert tuned["critical"] == round_up(fitted["critical"], 2) < conventional  # rounded up, 2 figures
     assert tuned["sizing"]["from_data"]["day_blocks"] == 14
+
+
+def test_a_re_propose_without_baseline_keeps_the_thresholds_from_data(plan, tmp_path, capsys):
+    log = _ar1_log(tmp_path / "iid.parquet", 0.5, seed=3, shuffle=True)
+    _dispersion(plan, tmp_path, log)
+    description = tmp_path / "pipeline.yaml"
+    description.write_text(COLD_STORE.replace("context: business", "context: business\nthresholds_from_data: replace"))
+    out = tmp_path / "tuned.yaml"
+    assert main(["propose", str(description), "-o", str(out), "--baseline", str(tmp_path / "base")]) == 0
+    tuned = out.read_bytes()
+    capsys.readouterr()
+    assert main(["propose", str(description), "-o", str(out)]) == 0  # the demo's "re-run propose" hint
+    assert out.read_bytes() == tuned  # the data's thresholds stay, byte for byte
+    assert "keep the thresholds their baseline gave" in capsys.readouterr().out
+
+
+def test_thresholds_from_data_never_go_below_the_noise_floor():
+    # A reference with no spread (no missing value in four weeks) asks for almost nothing; replacing the
+    # conventional threshold with that would page on a single event.
+    from stagewatch import plan as plan_mod
+
+    metric = {"id": "scale.input.kg_missing", "statistic": "proportion", "params": {"baseline": 0.001},
+              "reads": {"column": "kg", "condition": "missing"}, "warn": 0.01, "critical": 0.02,
+              "sizing": {"noise_floor": 0.00469, "warn_noise_floor": 0.0031, "derivation": "x"}}
+    from stagewatch.data import contract
+
+    found = {"checks": {metric["id"]: {"signature": contract.signature(metric), "critical": 7.1e-09,
+                                       "warn": 6.6e-09, "blocks": 14, "windows": 600, "dispersion": 0.0,
+                                       "dispersion_upper": 0.0}}, "period": {"from": "a", "to": "b"}}
+    plan_mod._apply_data_thresholds(metric, found, replace=True)
+    assert metric["critical"] == 0.0047 and metric["warn"] == 0.0031  # the floors, rounded up to 2 figures

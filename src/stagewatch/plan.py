@@ -254,8 +254,11 @@ def compose(pipeline: Pipeline, rules: list[Rule] | None = None, existing: dict[
     for metric_id, result in zip(to_size, fan_out(_sized, jobs, key=_shares_tails)):  # independent checks, on every core
         metric = merged[metric_id]
         _store_sizing(metric, result, refresh=metric_id not in kept)
-        if data_thresholds and metric_id not in kept:
-            _apply_data_thresholds(metric, data_thresholds, pipeline.thresholds_from_data == "replace")
+        if metric_id in kept:
+            continue
+        found = data_thresholds or _thresholds_kept_in(old.get(metric_id))
+        if found:
+            _apply_data_thresholds(metric, found, pipeline.thresholds_from_data == "replace")
     for metric_id, metric in merged.items():
         if metric_id not in kept:
             metric["fingerprint"] = fingerprint(metric)
@@ -274,6 +277,11 @@ def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any], replac
         if current is None or needed is None:
             continue
         value = sizing.round_up(float(needed), 2)
+        floor = (metric.get("sizing") or {}).get("noise_floor" if level == "critical" else "warn_noise_floor")
+        if replace and floor is not None and value < floor:
+            # A reference with no spread (no missing value in four weeks) asks for a threshold of nothing, which
+            # would fire on one event: the noise floor under independent items stays the lower bound.
+            value = sizing.round_up(float(floor), 2)
         if value > current or (replace and value < current):
             metric[level] = value
             raised.append(f"{level} {current:g} -> {value:g}")
@@ -285,17 +293,31 @@ def _apply_data_thresholds(metric: dict[str, Any], found: dict[str, Any], replac
     note = {"period": f"{period.get('from')} to {period.get('to')}", "day_blocks": fitted["blocks"],
             "windows": fitted["windows"], "dispersion": fitted["dispersion"],
             "dispersion_upper": fitted["dispersion_upper"],
-            "critical": sizing._sig(fitted.get("critical"), 3), "warn": sizing._sig(fitted.get("warn"), 3)}
+            "critical": sizing._sig(fitted.get("critical"), 6), "warn": sizing._sig(fitted.get("warn"), 6)}
     block = metric.setdefault("sizing", {})
     block["from_data"] = note
     block["derivation"] = (block.get("derivation", "") + " From data: replaying the reference "
                            f"({note['period']}, {note['windows']} windows, {note['day_blocks']} whole days resampled) "
                            f"the statistic spreads {fitted['dispersion']:.3g}x as much as with independent items (upper "
                            f"90%: {fitted['dispersion_upper']:.3g}); holding this check's alpha over those windows needs "
-                           f"critical >= {note['critical']}" + (f" and warn >= {note['warn']}" if note["warn"] else "")
+                           f"critical >= {sizing._sig(note['critical'], 3)}"
+                           + (f" and warn >= {sizing._sig(note['warn'], 3)}" if note["warn"] else "")
                            + (("; set " if replace else "; raised ") + ", ".join(raised) if raised
                               else "; the thresholds already hold it")
                            + ".").strip()
+
+
+def _thresholds_kept_in(before: dict[str, Any] | None) -> dict[str, Any] | None:
+    """The thresholds from data a metric carried in the plan being merged, in the form a baseline gives them, so
+    that a re-propose without ``--baseline`` keeps them (until a new baseline replaces them)."""
+    note = ((before or {}).get("sizing") or {}).get("from_data")
+    if not note or before is None:
+        return None
+    start, _, end = str(note.get("period", "")).partition(" to ")
+    fitted = {"signature": contract.signature(before), "critical": note.get("critical"), "warn": note.get("warn"),
+              "blocks": note.get("day_blocks"), "windows": note.get("windows"),
+              "dispersion": note.get("dispersion"), "dispersion_upper": note.get("dispersion_upper")}
+    return {"checks": {before["id"]: fitted}, "period": {"from": start, "to": end}}
 
 
 def _existing_metrics(plan: dict[str, Any]) -> dict[str, dict[str, Any]]:

@@ -26,6 +26,7 @@ class MergeReport:
     renamed: dict[str, str] = field(default_factory=dict)
     expected_false_pages: float = 0.0
     budget: float = 1.0
+    from_data_kept: int = 0  # checks whose thresholds from data came from the plan itself (no --baseline given)
 
     def lines(self) -> list[str]:
         out = [f"wrote {self.path}: {self.metrics} metrics"]
@@ -47,6 +48,9 @@ class MergeReport:
         if self.comments_moved:
             out.append(f"  warning: {len(self.comments_moved)} comment(s) lost their line (its metric or key is "
                        "gone) and are kept at the end of the plan")
+        if self.from_data_kept:
+            out.append(f"  {self.from_data_kept} check(s) keep the thresholds their baseline gave (as the plan "
+                       "recorded them); pass --baseline DIR to fit them to new reference data")
         if self.flagged:
             out.append(f"  {len(self.flagged)} flagged for review (see 'review:' in the plan)")
         out.append(f"  expected false pages per week from sampling noise alone, under independent items: "
@@ -123,4 +127,7 @@ def propose(pipeline_path: str, plan_path: str | None, catalog_dir: str | None =
     rep.comments_kept = comments.count(kept) - len(moved)
     rep.comments_moved = moved
     rep.renamed = {a: b for a, b in moved_ids.items() if "." in a}
+    if found is None:
+        rep.from_data_kept = sum(1 for m in plan_mod.all_metrics(composed)
+                                 if "fingerprint" in m and (m.get("sizing") or {}).get("from_data"))
     return text, rep
