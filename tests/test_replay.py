@@ -158,3 +158,21 @@ def test_injected_rows_are_those_the_documented_draw_picks(store, kind):
         empty = [r[0] for r in engine.con.execute(f"SELECT temp_c IS NULL FROM {changed.view} "
                                                   f"ORDER BY epoch_us(timestamp)").fetchall()]
         assert empty == (picked | temp.astype(bool)).tolist()
+
+
+def test_a_check_that_never_has_its_samples_is_never_measured_not_as_planned(store, tmp_path):
+    plan, base, paths = store
+    data = yaml.safe_load(plan.read_text())
+    for stage in data["stages"]:
+        for m in stage["metrics"]:
+            if m["id"] == "probe.input.level_shift":
+                m["window"] = "1m"  # a handful of readings a minute: under the 30 a mean needs (common practice)
+    edited = tmp_path / "edited.yaml"
+    edited.write_text(yaml.safe_dump(data, sort_keys=False))
+    result = run_replay(str(edited), str(base), paths, start=PERIOD[1], end=PERIOD[3])
+    level = next(c for c in result.checks if c.id == "probe.input.level_shift")
+    assert level.evaluations > 0 and level.insufficient == level.evaluations
+    assert level.verdict == "never measured"
+    from stagewatch.data.replay_report import summary_lines
+
+    assert any("never measured" in line and level.id in line for line in summary_lines(result))

@@ -79,7 +79,12 @@ class _Context:
         if quality:
             return sizing.Traffic(stage.labelled_per_hour, stage.change_rate, stage.label_delay,
                                   run_every=run_every)
-        return sizing.Traffic(stage.volume_per_hour, stage.change_rate, None, stage.slo_target, stage.slo_period,
+        per_hour = stage.volume_per_hour
+        if edge and owner == edge[1] and owner in stages:
+            # The consumer's side is read in the consumer's log, which holds no more rows than the consumer
+            # handles: an aggregating stage (a carton planner) logs its 45 cartons an hour, not the 2,000 fruit.
+            per_hour = min(per_hour, stages[owner].volume_per_hour)
+        return sizing.Traffic(per_hour, stage.change_rate, None, stage.slo_target, stage.slo_period,
                               stage.latency_slo_ms, run_every)
 
 

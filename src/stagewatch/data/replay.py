@@ -26,6 +26,7 @@ from stagewatch.errors import StagewatchError
 WEEK = 7 * 86400.0
 CADENCES = ("tumbling", "1m")
 MIN_WINDOWS = 20  # fewer independent windows than this: too few to judge a rate (common practice, from memory)
+NEVER_MEASURED = "never measured"  # every window held fewer samples than the statistic needs
 NOISIER_P = 0.01  # a check is noisier than planned when its firings would be this unlikely under the plan
 
 
@@ -209,7 +210,9 @@ def _replay_stage(engine: Any, source: sources.Source, runnable: list[Runnable],
         episodes = _episodes(times, levels > 0, seconds)
         observed = crit_n if cadence == "tumbling" else _episodes(times, levels == 2, seconds)
         verdict, factor = _verdict(observed, planned_crit, weeks, windows)
-        if planned_warn is not None and verdict != "too few windows to say":
+        if idx.size and int(insufficient.sum()) == idx.size:  # quiet only because it never had the samples it needs
+            verdict, factor = NEVER_MEASURED, None
+        if planned_warn is not None and verdict not in ("too few windows to say", NEVER_MEASURED):
             observed_w = warn_n if cadence == "tumbling" else _episodes(times, levels == 1, seconds)
             verdict_w, factor_w = _verdict(observed_w, planned_warn, weeks, windows)
             if verdict_w == "noisier than planned" and (verdict != "noisier than planned"

@@ -9,7 +9,7 @@ from typing import Any
 import numpy as np
 
 from stagewatch.data.attribution import CAVEAT
-from stagewatch.data.replay import ReplayResult, affected, duration_words
+from stagewatch.data.replay import NEVER_MEASURED, ReplayResult, affected, duration_words
 from stagewatch.data.report import attribution_lines, fmt, make_console
 from stagewatch.data.sources import format_time
 
@@ -57,6 +57,11 @@ def summary_lines(result: ReplayResult) -> list[str]:
     if noisy:
         lines.append(f"{len(noisy)} check(s) noisier than planned; noisiest: " + ", ".join(
             f"{c.id} ({factor_words(c.factor)})" for c in sorted(noisy, key=lambda c: -(c.factor or 0))[:3]))
+    unmeasured = [c for c in result.checks if c.verdict == NEVER_MEASURED]
+    if unmeasured:
+        lines.append(f"{len(unmeasured)} check(s) never measured: every window held fewer samples than the statistic "
+                     "needs (its quiet timeline is not an all clear): " + ", ".join(c.id for c in unmeasured[:5])
+                     + (" ..." if len(unmeasured) > 5 else ""))
     if result.not_measured:
         lines.append(f"{len(result.not_measured)} check(s) not measured (see `stagewatch check` for why)")
     return lines
