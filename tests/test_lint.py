@@ -92,6 +92,9 @@ def test_schema_error_points_at_the_line(tmp_path, write):
     findings = lint_file(str(out))
     assert findings[0].code == "schema" and "maybe" in findings[0].message
     assert text.splitlines()[findings[0].line - 1].strip().startswith("status: maybe")
+    # Invalid input: exit 2, as render and export give for the same file (the README's exit-code table).
+    assert main(["lint", str(out)]) == 2
+    assert main(["render", str(out), "-o", str(tmp_path / "md")]) == 2
 
 
 def test_json_format_and_exit_codes(tmp_path, write, capsys):

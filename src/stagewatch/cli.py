@@ -39,7 +39,7 @@ def _propose(args: argparse.Namespace) -> int:
 
 
 def _lint(args: argparse.Namespace) -> int:
-    from stagewatch.lint import lint_file
+    from stagewatch.lint import INVALID, lint_file
 
     findings = lint_file(args.plan)
     if args.format == "json":
@@ -49,6 +49,8 @@ def _lint(args: argparse.Namespace) -> int:
         for f in findings:
             print(f)
         print(f"{args.plan}: {'clean' if not findings else f'{len(findings)} finding(s)'}", file=sys.stderr)
+    if any(f.code in INVALID for f in findings):
+        return EXIT_USAGE  # the plan is invalid input, as render and export say; its violations are listed above
     return EXIT_FINDINGS if findings else EXIT_OK
 
 

@@ -6,6 +6,7 @@ from dataclasses import asdict, dataclass
 from typing import Any, Iterator
 
 from stagewatch import durations, fold, yamlio
+from stagewatch import plan as plan_mod
 from stagewatch.errors import StagewatchError
 from stagewatch.plan import all_metrics, budget_summary, pipeline_of, require_plan
 
@@ -40,12 +41,16 @@ def lint_document(doc: yamlio.Document) -> list[Finding]:
     schema_errors = sorted(yamlio.schema_errors(doc.data, "plan"), key=lambda e: list(map(str, e.absolute_path)))
     if schema_errors:
         return [Finding(doc.path, doc.line_of(e.absolute_path), "schema", _schema_message(e)) for e in schema_errors]
-    try:
-        pipeline_of(doc.data, doc)
-    except StagewatchError as exc:
-        return [Finding(doc.path, exc.line, "description", str(exc.message)
-                        + (f" (expected: {exc.expected})" if exc.expected else ""))]
+    for check, code in ((pipeline_of, "description"), (plan_mod.check_values, "invalid")):
+        try:
+            check(doc.data, doc)
+        except StagewatchError as exc:  # what render and export refuse to read: invalid input, not a finding
+            return [Finding(doc.path, exc.line, code, str(exc.message)
+                            + (f" (expected: {exc.expected})" if exc.expected else ""))]
     return list(_meaning(doc))
+
+
+INVALID = ("schema", "description", "invalid")  # finding codes that make the plan invalid input (exit 2)
 
 
 def _schema_message(error: Any) -> str:

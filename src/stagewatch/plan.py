@@ -422,6 +422,11 @@ def load_plan(path: str) -> tuple[dict[str, Any], yamlio.Document]:
     return doc.data, doc
 
 
+def check_values(data: Any, doc: yamlio.Document) -> None:
+    """The rules on values the schema cannot express (thresholds of drift statistics are never negative)."""
+    _check_thresholds(doc)
+
+
 def _check_thresholds(doc: yamlio.Document) -> None:
     """Thresholds of drift statistics are sizes of change (see DEVELOPERS.md), so never negative; only fixed
     limits (``level``) read as levels. The schema bounds the numbers; this is the rule it cannot express."""
