@@ -65,7 +65,7 @@ def test_duplicate_stage_id(write):
 
 def test_cycle_names_every_stage_on_it(write):
     text = SMALL.replace("    inputs:\n      - {name: amount", "    upstream: [scorer]\n    inputs:\n      - {name: amount")
-    err = _error(write, text)
+    err = _error(write, text.replace("kind: source", "kind: rule-based", 1))  # a source takes no upstream
     assert "cycle" in err.message and "feed" in err.message and "scorer" in err.message
 
 
@@ -84,3 +84,26 @@ def test_missing_file_and_not_a_mapping(write, tmp_path):
         load_pipeline(str(tmp_path / "nope.yaml"))
     err = _error(write, "- just\n- a list\n")
     assert "mapping" in err.message
+
+
+def test_a_source_with_an_upstream_is_refused(write):
+    text = SMALL.replace("    volume_per_hour: 1000\n    inputs:", "    volume_per_hour: 1000\n    upstream: [scorer]\n"
+                         "    inputs:", 1)
+    err = _error(write, text)
+    assert "a source stage takes nothing from other stages" in err.message and err.line == 10
+
+
+def test_run_every_only_on_a_batch_stage(write):
+    text = SMALL.replace("    latency_slo_ms: 50\n", "    latency_slo_ms: 50\n    run_every: 1h\n")
+    err = _error(write, text)
+    assert "run_every is the period of a batch stage, and this one is online" in err.message
+    assert text.strip().splitlines()[err.line - 1].strip() == "run_every: 1h"
+
+
+def test_a_field_handed_over_keeps_its_type(write):
+    text = SMALL.replace("    serving: batch\n    volume_per_hour: 1000\n    inputs:\n      - {name: amount, type: numeric, range: [0, 100]}\n",
+                         "    serving: batch\n    volume_per_hour: 1000\n    outputs:\n      - {name: postcode, type: category}\n")
+    text += "    inputs:\n      - {name: postcode, type: numeric}\n"
+    err = _error(write, text)
+    assert "input 'postcode' is numeric here but category in the outputs of 'feed' (line 11)" in err.message
+    assert err.line == 21

@@ -175,6 +175,12 @@ def from_document(doc: yamlio.Document) -> Pipeline:
             raise fail("latency_slo_ms", f"a latency SLO only applies to online stages, this one is {raw['serving']}")
         if raw["kind"] == "source" and labels != "none":
             raise fail("labels", "a source stage makes no predictions to label", "labels: none")
+        if raw["kind"] == "source" and raw.get("upstream"):
+            raise fail("upstream", "a source stage takes nothing from other stages",
+                       "no upstream, or another kind (learned or rule-based)")
+        if "run_every" in raw and raw["serving"] != "batch":
+            raise fail("run_every", f"run_every is the period of a batch stage, and this one is {raw['serving']}",
+                       "serving: batch, or no run_every")
         for key in ("inputs", "outputs"):
             names = [f["name"] for f in raw.get(key, [])]
             dupes = sorted({n for n in names if names.count(n) > 1})
@@ -218,6 +224,7 @@ def from_document(doc: yamlio.Document) -> Pipeline:
                 outputs=[_field(f) for f in raw.get("outputs", [])],
             )
         )
+    _check_handed_types(stages, doc)
     ids = {s.id for s in stages}
     for index, s in enumerate(stages):
         if s.renamed_from and s.renamed_from in ids:
@@ -237,6 +244,23 @@ def from_document(doc: yamlio.Document) -> Pipeline:
         source_path=doc.path,
     )
     return pipeline
+
+
+def _check_handed_types(stages: list[Stage], doc: yamlio.Document) -> None:
+    """A field a stage outputs and its consumer declares as an input is the same data: one type on both sides."""
+    index = {s.id: i for i, s in enumerate(stages)}
+    for s in stages:
+        for f_index, field_ in enumerate(s.inputs):
+            for up in s.upstream:
+                if up not in index:
+                    continue  # named by the graph check, with its line
+                sent = next(((i, o) for i, o in enumerate(stages[index[up]].outputs) if o.name == field_.name), None)
+                if sent and sent[1].type != field_.type:
+                    raise StagewatchError(
+                        f"stage '{s.id}': input '{field_.name}' is {field_.type} here but {sent[1].type} in the "
+                        f"outputs of '{up}' (line {doc.line_of(('stages', index[up], 'outputs', sent[0], 'type'))})",
+                        file=doc.path, line=doc.line_of(("stages", index[s.id], "inputs", f_index, "type")),
+                        expected="the same type on both sides of a hand-off")
 
 
 def load_pipeline(path: str) -> Pipeline:
