@@ -84,6 +84,16 @@ def _check_scalar(node: yaml.ScalarNode, path: str, derived: bool) -> None:
             raise _fail(node, path, f"'{node.value}' is not a finite number", "a finite number")
 
 
+def _check_keys(node: yaml.MappingNode, path: str) -> None:
+    seen: dict[str, int] = {}
+    for knode, _ in node.value:
+        name = str(knode.value)
+        if name in seen:
+            raise StagewatchError(f"key '{name}' appears twice in the same block (first on line {seen[name]})",
+                                  file=path, line=knode.start_mark.line + 1, expected="each key once")
+        seen[name] = knode.start_mark.line + 1
+
+
 def _check_plain_tree(root: yaml.Node, path: str) -> None:
     """The checks of :func:`_check_tree` for a document without anchors, so without aliases: every node is met
     once, and nothing needs to be remembered but the keys of the mapping at hand."""
@@ -93,20 +103,12 @@ def _check_plain_tree(root: yaml.Node, path: str) -> None:
         node, depth, derived = stack.pop()
         if depth > MAX_DEPTH:
             raise _fail(node, path, f"blocks nested more than {MAX_DEPTH} deep", f"at most {MAX_DEPTH} levels")
-        kind = type(node)
-        if kind is scalar:
+        if isinstance(node, scalar):
             if node.tag in (_INT_TAG, _FLOAT_TAG):
                 _check_scalar(node, path, derived)
             continue
-        if kind is mapping:
-            seen: dict[str, int] = {}
-            for knode, _ in node.value:
-                name = str(knode.value)
-                if name in seen:
-                    raise StagewatchError(f"key '{name}' appears twice in the same block (first on line "
-                                          f"{seen[name]})", file=path, line=knode.start_mark.line + 1,
-                                          expected="each key once")
-                seen[name] = knode.start_mark.line + 1
+        if isinstance(node, mapping):
+            _check_keys(node, path)
             for knode, vnode in reversed(node.value):
                 stack.append((vnode, depth + 1, derived or knode.value == DERIVED_KEY))
                 stack.append((knode, depth + 1, derived))
@@ -150,14 +152,7 @@ def _check_tree(root: yaml.Node | None, path: str) -> None:
             expanded[key] = 1
             continue
         if isinstance(node, yaml.MappingNode):
-            seen: dict[str, int] = {}
-            for knode, _ in node.value:
-                name = str(knode.value)
-                if name in seen:
-                    raise StagewatchError(f"key '{name}' appears twice in the same block (first on line "
-                                          f"{seen[name]})", file=path, line=knode.start_mark.line + 1,
-                                          expected="each key once")
-                seen[name] = knode.start_mark.line + 1
+            _check_keys(node, path)
         open_nodes.add(key)
         stack.append((node, depth, True, derived))
         if isinstance(node, yaml.MappingNode):
@@ -362,7 +357,9 @@ class _Dumper(_CachedResolve, getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  #
     def represent(self, data: Any) -> None:
         """PyYAML's ``represent``, with the nodes of plain data built in one pass (:mod:`stagewatch.yamlnodes`)."""
         self.serialize(yamlnodes.nodes(data, super().represent_data))
-        self.represented_objects, self.object_keeper, self.alias_key = {}, [], None
+        self.represented_objects.clear()
+        self.object_keeper.clear()
+        self.alias_key = None
 
     def represent_data(self, data: Any) -> yaml.Node:
         if type(data) is str:  # never an alias: straight to the one representer for text
