@@ -176,3 +176,12 @@ def test_a_check_that_never_has_its_samples_is_never_measured_not_as_planned(sto
     from stagewatch.data.replay_report import summary_lines
 
     assert any("never measured" in line and level.id in line for line in summary_lines(result))
+
+
+def test_a_fixed_limit_is_judged_as_one_not_as_too_few_windows():
+    from stagewatch.data.replay import FIXED_LIMIT, _verdict
+
+    # 8,064 five-minute windows over four weeks: plenty; a fixed limit simply has no planned noise rate.
+    assert _verdict(3, None, 4.0, 8064) == (FIXED_LIMIT, None)
+    assert _verdict(3, 0.5, 4.0, 3)[0] == "too few windows to say"
+    assert _verdict(0, 0.5, 4.0, 8064)[0] == "as planned"

@@ -26,6 +26,7 @@ from stagewatch.errors import StagewatchError
 WEEK = 7 * 86400.0
 CADENCES = ("tumbling", "1m")
 MIN_WINDOWS = 20  # fewer independent windows than this: too few to judge a rate (common practice, from memory)
+FIXED_LIMIT = "fixed limit, no planned rate"
 NEVER_MEASURED = "never measured"  # every window held fewer samples than the statistic needs
 NOISIER_P = 0.01  # a check is noisier than planned when its firings would be this unlikely under the plan
 
@@ -131,7 +132,9 @@ def _episodes(times: np.ndarray, firing: np.ndarray, window: float) -> int:
 
 
 def _verdict(observed: int, planned_per_week: float | None, weeks: float, windows: float) -> tuple[str, float | None]:
-    if windows < MIN_WINDOWS or planned_per_week is None:
+    if planned_per_week is None:  # a fixed limit: no sampling noise was planned, so there is no rate to compare
+        return FIXED_LIMIT, None
+    if windows < MIN_WINDOWS:
         return "too few windows to say", None
     expected = planned_per_week * weeks
     factor = (observed / expected) if expected > 0 else (math.inf if observed else 1.0)
@@ -212,7 +215,7 @@ def _replay_stage(engine: Any, source: sources.Source, runnable: list[Runnable],
         verdict, factor = _verdict(observed, planned_crit, weeks, windows)
         if idx.size and int(insufficient.sum()) == idx.size:  # quiet only because it never had the samples it needs
             verdict, factor = NEVER_MEASURED, None
-        if planned_warn is not None and verdict not in ("too few windows to say", NEVER_MEASURED):
+        if planned_warn is not None and verdict not in ("too few windows to say", NEVER_MEASURED, FIXED_LIMIT):
             observed_w = warn_n if cadence == "tumbling" else _episodes(times, levels == 1, seconds)
             verdict_w, factor_w = _verdict(observed_w, planned_warn, weeks, windows)
             if verdict_w == "noisier than planned" and (verdict != "noisier than planned"
