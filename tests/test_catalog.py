@@ -118,3 +118,29 @@ def test_duplicate_rule_ids_are_rejected(tmp_path):
     with pytest.raises(StagewatchError, match="already used") as info:
         load_catalog(tmp_path)
     assert info.value.line == 6
+
+
+@pytest.mark.parametrize("output,name,reads", [
+    ("value", "final_absolute_error", {"transform": "abs_error"}),
+    ("score", "final_brier_score", {"transform": "squared_error"}),
+    ("class", "final_quality", {"condition": "disagrees"}),
+    ("attribute", "final_quality", {"condition": "disagrees"}),
+])
+def test_the_pipeline_quality_check_judges_the_last_stage_by_its_output_type(output, name, reads):
+    from stagewatch.plan import compose
+
+    sink = _stage(id="last", kind="rule-based", output=output, labels="delayed", label_delay="1d", upstream=["s"])
+    plan = compose(Pipeline("p", [_stage(output="records", kind="source"), sink]))
+    [quality] = [m for m in plan["pipeline_metrics"] if m.get("on_labels")]
+    assert quality["id"] == f"pipeline.output.{name}"
+    assert reads.items() <= quality["reads"].items() and quality["reads"]["stage"] == "last"
+
+
+def test_a_learned_last_stage_judged_on_labels_carries_the_pipeline_quality_check():
+    from stagewatch.plan import compose
+
+    sink = _stage(id="last", output="value", labels="delayed", label_delay="1d", upstream=["s"])
+    plan = compose(Pipeline("p", [_stage(output="records", kind="source"), sink]))
+    assert not [m for m in plan["pipeline_metrics"] if m.get("on_labels")]
+    [own] = [m for s in plan["stages"] for m in s["metrics"] if m["id"] == "last.output.absolute_error"]
+    assert {"metric": "pipeline.output.final_absolute_error"} in own["serves"]
