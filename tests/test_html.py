@@ -294,7 +294,7 @@ def test_each_verdict_carries_its_severity_and_the_summary_counts_pages_and_tick
             row("d", "ok", "page")]
     result = CheckResult(at=T0, rows=rows, service_checks=0, stages_without_data=[], attribution=[],
                          pipeline="tiny", plan=plan)
-    assert summary_line(result).endswith("3 critical (of the critical: 1 would page, 2 would open a ticket)")
+    assert summary_line(result).endswith("1 ok, 3 critical (1 would page, 2 would open a ticket)")
     expected = {r.id.rsplit(".", 1)[1]: (r.verdict, r.severity) for r in rows}
 
     md = MarkdownIt("commonmark").enable("table").parse(to_markdown(result))

@@ -29,20 +29,18 @@ def _threshold(warn: float | None, critical: float | None) -> str:
 
 def summary_line(result: CheckResult) -> str:
     counts = result.counts()
-    parts = [f"{counts[v]} {v.replace('_', ' ')}" for v in VERDICTS if counts[v]]
+    parts = [f"{counts[v]} {v.replace('_', ' ')}" + (_critical_severities(result) if v == "critical" else "")
+             for v in VERDICTS if counts[v]]
     at = format_time(result.at) or "no data"
-    return f"{len(result.rows)} checks at {at}: " + ", ".join(parts) + _critical_severities(result)
+    return f"{len(result.rows)} checks at {at}: " + ", ".join(parts)
 
 
 def _critical_severities(result: CheckResult) -> str:
     """How the critical verdicts would reach people: the exit code says "critical" for both severities, so the
     summary says how many would page someone and how many would open a ticket."""
     critical = [r.severity for r in result.rows if r.verdict == "critical"]
-    if not critical:
-        return ""
     pages = critical.count("page")
-    tickets = len(critical) - pages
-    return f" (of the critical: {pages} would page, {tickets} would open a ticket)"
+    return f" ({pages} would page, {len(critical) - pages} would open a ticket)"
 
 
 def attribution_lines(result: CheckResult) -> list[str]:
