@@ -118,3 +118,57 @@ def test_duplicate_rule_ids_are_rejected(tmp_path):
     with pytest.raises(StagewatchError, match="already used") as info:
         load_catalog(tmp_path)
     assert info.value.line == 6
+
+
+@pytest.mark.parametrize("output,name,reads", [
+    ("value", "final_absolute_error", {"transform": "abs_error"}),
+    ("score", "final_brier_score", {"transform": "squared_error"}),
+    ("class", "final_quality", {"condition": "disagrees"}),
+    ("attribute", "final_quality", {"condition": "disagrees"}),
+])
+def test_the_pipeline_quality_check_judges_the_last_stage_by_its_output_type(output, name, reads):
+    from stagewatch.plan import compose
+
+    sink = _stage(id="last", kind="rule-based", output=output, labels="delayed", label_delay="1d", upstream=["s"])
+    plan = compose(Pipeline("p", [_stage(output="records", kind="source"), sink]))
+    [quality] = [m for m in plan["pipeline_metrics"] if m.get("on_labels")]
+    assert quality["id"] == f"pipeline.output.{name}"
+    assert reads.items() <= quality["reads"].items() and quality["reads"]["stage"] == "last"
+
+
+def test_a_learned_last_stage_judged_on_labels_carries_the_pipeline_quality_check():
+    from stagewatch.plan import compose
+
+    sink = _stage(id="last", output="value", labels="delayed", label_delay="1d", upstream=["s"])
+    plan = compose(Pipeline("p", [_stage(output="records", kind="source"), sink]))
+    assert not [m for m in plan["pipeline_metrics"] if m.get("on_labels")]
+    [own] = [m for s in plan["stages"] for m in s["metrics"] if m["id"] == "last.output.absolute_error"]
+    assert {"metric": "pipeline.output.final_absolute_error"} in own["serves"]
+
+
+def test_text_received_from_an_upstream_stage_is_read_under_its_name_and_checked_once():
+    """camera -> OCR (text) -> rule-based gate -> parser: the gate's own text checks and the consumer side of the
+    hand-off read the column the OCR stage writes, so they fold into one check and no log is asked for a `text`
+    column nothing writes."""
+    from stagewatch.data import contract
+    from stagewatch.fold import duplicates
+    from stagewatch.plan import compose
+
+    stages = [
+        _stage(id="label_camera", kind="source", modality="image", output="records"),
+        _stage(id="ocr_reader", modality="image", output="text", upstream=["label_camera"],
+               outputs=[FieldSpec("label_text", "text")]),
+        _stage(id="address_gate", kind="rule-based", modality="text", output="gate", upstream=["ocr_reader"]),
+        _stage(id="address_parser", modality="text", output="attribute", upstream=["address_gate"]),
+    ]
+    plan = compose(Pipeline("labels", stages))
+    metrics = {m["id"]: m for s in plan["stages"] for m in s["metrics"]}
+    length = metrics["address_gate.input.text_length"]
+    assert length["reads"] == {"column": "label_text", "transform": "length"}
+    assert "address_gate.input.from_ocr_reader_length" not in metrics
+    assert {"metric": "address_gate.input.from_ocr_reader_length",
+            "edge": {"from": "ocr_reader", "to": "address_gate", "side": "downstream"}} in length["serves"]
+    assert not duplicates([*metrics.values(), *plan["pipeline_metrics"]])
+    columns = contract.log_columns(plan)
+    assert "text" not in columns["address_gate"] and "text" not in columns["address_parser"]
+    assert "label_text" in columns["address_parser"]  # the text the gate passed on, as the OCR stage wrote it

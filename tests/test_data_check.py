@@ -293,3 +293,71 @@ def test_outputs_never_land_on_an_input(tmp_path, cold_store, capsys):
         assert code == 2, target
     assert (tmp_path / "base" / "baseline.json").read_bytes() == before
     assert yaml.safe_load(cold_store.read_text())["pipeline"] == "cold-store"
+
+
+# --- the whole pipeline's quality check follows the type of the last stage's output ------------------------------
+
+FORECAST = """
+pipeline: produce-forecast
+context: business
+stages:
+  - id: orders
+    kind: source
+    modality: tabular
+    output: records
+    serving: batch
+    volume_per_hour: 60
+    inputs:
+      - {name: order_kg, type: numeric, range: [0, 500]}
+  - id: forecaster
+    kind: rule-based
+    modality: tabular
+    output: value
+    upstream: [orders]
+    serving: batch
+    volume_per_hour: 60
+    labels: delayed
+    label_delay: 1d
+    outputs:
+      - {name: forecast_kg, type: numeric}
+"""
+
+
+def test_the_pipeline_quality_of_a_forecast_in_kg_fires_when_its_error_doubles(tmp_path, capsys, write):
+    import numpy as np
+
+    plan = tmp_path / "plan.yaml"
+    assert main(["propose", str(write("pipeline.yaml", FORECAST)), "-o", str(plan)]) == 0
+    [quality] = [m for m in _plan(plan)["pipeline_metrics"] if m.get("on_labels")]
+    assert quality["id"] == "pipeline.output.final_absolute_error"
+    assert quality["reads"]["transform"] == "abs_error" and quality["statistic"] == "mean"
+    rng = np.random.default_rng(7)
+    hours = 24 * 14
+    times = T0 + np.arange(hours * 60) * 60.0  # one forecast a minute for 14 days
+    truth = rng.uniform(50, 400, times.size)
+    scale = np.where(times >= T0 + 13 * DAY, 12.0, 6.0)  # the error's spread doubles on the last day
+    forecast = np.round(truth + rng.normal(0.0, scale), 3)
+    truth = np.round(truth, 3)  # as written to the log
+    log = tmp_path / "forecaster.csv"
+    log.write_text("timestamp,forecast_kg,forecast_kg_label\n" + "".join(
+        f"{_iso(t)},{f:.3f},{y:.3f}\n" for t, f, y in zip(times, forecast, truth)))
+    orders = tmp_path / "orders.csv"
+    orders.write_text("timestamp,order_kg\n" + "".join(f"{_iso(t)},{y:.3f}\n" for t, y in zip(times, truth)))
+    paths = {"orders": str(orders), "forecaster": str(log)}
+    # A share of forecasts that "disagree" with their label (differ by 0.5 kg or more) is nearly one before and
+    # after the change (numpy on the same rows), so a share of disagreements could not rise enough to fire.
+    err = np.abs(forecast - truth)
+    before, after = err[times < T0 + 12 * DAY], err[times >= T0 + 13 * DAY]
+    assert (before >= 0.5).mean() > 0.9 and (after >= 0.5).mean() > 0.9
+    assert _calibrate(plan, paths, tmp_path / "base") == 0
+    code, doc = _run_check(capsys, plan, tmp_path / "base", paths)
+    [check] = [c for c in doc["checks"] if c["id"] == quality["id"]]
+    assert check["verdict"] == "critical", json.dumps(check)
+    assert code == 4
+    # the mean absolute error it judged is numpy's on the rows of its window
+    from datetime import datetime
+
+    end = datetime.fromisoformat(doc["at"].replace("Z", "+00:00")).timestamp()
+    window = err[(times > end - 3600) & (times <= end)]
+    assert check["window"] == "1h" and check["n"] == window.size
+    assert check["detail"]["mean"] == pytest.approx(window.mean(), rel=1e-9)

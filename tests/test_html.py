@@ -269,3 +269,59 @@ def test_an_origin_on_a_hand_off_marks_the_arrow(write):
     [section] = [s for s in every(tree, "section") if s.get("data-check") == row.id]
     titles = [t.text for t in every(section, "title")]
     assert "bin 1: 90% of the window" in titles and "bin 2: 50% of the reference" in titles
+
+
+def test_each_verdict_carries_its_severity_and_the_summary_counts_pages_and_tickets(write):
+    """Critical is a verdict, paging is a severity: every output names both (parsed by html5lib, markdown-it-py
+    and rich's own table)."""
+    import io
+
+    from markdown_it import MarkdownIt
+    from rich.console import Console
+
+    from stagewatch.data.check import CheckResult, CheckRow
+    from stagewatch.data.html_report import render_check
+    from stagewatch.data.report import print_table, summary_line, to_markdown
+
+    plan = compose(load_pipeline(str(write("p.yaml", SMALL))))
+
+    def row(name: str, verdict: str, severity: str) -> CheckRow:
+        return CheckRow(id=f"scorer.input.{name}", stage="scorer", layer="input", statistic="proportion",
+                        window="1h", verdict=verdict, value=0.3, warn=0.1, critical=0.2, n=500, m=10000,
+                        severity=severity)
+
+    rows = [row("a", "critical", "ticket"), row("b", "critical", "page"), row("c", "critical", "ticket"),
+            row("d", "ok", "page")]
+    result = CheckResult(at=T0, rows=rows, service_checks=0, stages_without_data=[], attribution=[],
+                         pipeline="tiny", plan=plan)
+    assert summary_line(result).endswith("1 ok, 3 critical (1 would page, 2 would open a ticket)")
+    expected = {r.id.rsplit(".", 1)[1]: (r.verdict, r.severity) for r in rows}
+
+    md = MarkdownIt("commonmark").enable("table").parse(to_markdown(result))
+    cells = [t.content for t in md if t.type == "inline"]
+    header = cells.index("check")
+    columns = cells[header:header + 8]
+    assert columns[:3] == ["check", "verdict", "severity"]
+    body = [cells[i:i + 8] for i in range(header + 8, header + 8 * (len(rows) + 1), 8)]
+    assert {c[0].rsplit(".", 1)[1]: (c[1].split()[-1], c[2]) for c in body} == expected
+
+    tree, _ = parse(render_check(result))
+    [table] = every(tree, "table")
+    heads = [texts(th) for th in every(table, "th")]
+    assert heads[1:3] == ["Verdict", "Severity"]
+    got = {}
+    for tr in every(table, "tr")[1:]:
+        tds = every(tr, "td")
+        got[texts(tds[0]).rsplit(".", 1)[1]] = (texts(tds[1]).split()[-1], texts(tds[2]))
+    assert got == expected
+    for section in every(tree, "section"):
+        check = section.get("data-check").rsplit(".", 1)[1]
+        assert expected[check][1] in texts(every(section, "h3")[0])
+
+    out = io.StringIO()
+    print_table(result, Console(file=out, width=160, highlight=False))
+    lines = out.getvalue().splitlines()
+    for name, (verdict, severity) in expected.items():
+        [line] = [x for x in lines if x.strip().startswith(f"input.{name} ")]
+        mark = ["ok"] if verdict == "ok" else ["x", verdict]
+        assert line.split()[1:2 + len(mark)] == [*mark, severity], line

@@ -2,7 +2,8 @@
 
 A rule's ``when`` lists stage traits; a trait given as a list matches any of its values, and every listed trait
 must match. ``each: input_field`` (or ``output_field``) repeats the rule for every declared field that passes the
-``field_*`` conditions. Edge rules test the upstream stage (``from``) and the downstream stage (``to``).
+``field_*`` conditions. Edge rules test the upstream stage (``from``) and the downstream stage (``to``). Pipeline
+rules test ``any_stage``, ``any_sink``, or ``sink``: the last stage, the one whose log ``{sink}`` reads.
 """
 
 from __future__ import annotations
@@ -217,6 +218,8 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
                                            for s in pipeline.stages):
             continue
         if "any_sink" in cond and not any(_traits_match(cond["any_sink"], s, pipeline, graph, derived) for s in sinks):
+            continue
+        if "sink" in cond and not (sinks and _traits_match(cond["sink"], sinks[0], pipeline, graph, derived)):
             continue
         if "one_to_one" in cond and one_to_one(pipeline, graph) != cond["one_to_one"]:
             continue

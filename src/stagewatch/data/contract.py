@@ -9,6 +9,9 @@ are filled here from the pipeline description:
 ``{handoff}``   on a hand-off, the producer's output column (the consumer's log carries it under the same name)
 ``{inputs}``    in ``columns``: every declared input field of the stage
 ``{series}``    the first numeric input field of a time-series stage (else ``value``)
+``{text}``      the text a stage receives: the output column of the nearest upstream stage that writes text, through
+                stages that pass items on unchanged (else ``text``), so that the stage's own text checks and the
+                consumer side of the hand-off read one column and fold into one check
 ``{sink}``      the last stage of the pipeline (for whole-pipeline metrics)
 
 Nothing here reads data; :func:`reads_for` runs at ``propose`` time and the plan stores the result.
@@ -63,6 +66,21 @@ def _series(stage: Stage) -> str:
     return numeric[0] if numeric else "value"
 
 
+def received_text(stage: Stage, stages: dict[str, Stage]) -> str:
+    """The column of ``stage``'s log holding the text it receives (see ``{text}`` above)."""
+    queue, seen = list(stage.upstream), set()
+    while queue:
+        up = stages.get(queue.pop(0))
+        if up is None or up.id in seen:
+            continue
+        seen.add(up.id)
+        if up.output == "text":
+            return handoff_column(up)
+        if not up.outputs and up.output in ("gate", "records"):
+            queue.extend(up.upstream)
+    return "text"
+
+
 def _declared(stages: list[Stage], column: str) -> FieldSpec | None:
     """The declared field named ``column`` among these stages' inputs and outputs, first match."""
     for stage in stages:
@@ -96,6 +114,7 @@ def reads_for(template: dict[str, Any] | None, *, owner: Stage | None, pipeline:
         "output": output_column(log_stage),
         "handoff": handoff_column(producer),
         "series": _series(log_stage),
+        "text": received_text(log_stage, stages),
     }
     valueless = log_stage if "{output}" in str(reads.get("column")) else producer
     if ("{output}" in str(reads.get("column")) or "{handoff}" in str(reads.get("column"))) \

@@ -29,9 +29,18 @@ def _threshold(warn: float | None, critical: float | None) -> str:
 
 def summary_line(result: CheckResult) -> str:
     counts = result.counts()
-    parts = [f"{counts[v]} {v.replace('_', ' ')}" for v in VERDICTS if counts[v]]
+    parts = [f"{counts[v]} {v.replace('_', ' ')}" + (_critical_severities(result) if v == "critical" else "")
+             for v in VERDICTS if counts[v]]
     at = format_time(result.at) or "no data"
     return f"{len(result.rows)} checks at {at}: " + ", ".join(parts)
+
+
+def _critical_severities(result: CheckResult) -> str:
+    """How the critical verdicts would reach people: the exit code says "critical" for both severities, so the
+    summary says how many would page someone and how many would open a ticket."""
+    critical = [r.severity for r in result.rows if r.verdict == "critical"]
+    pages = critical.count("page")
+    return f" ({pages} would page, {len(critical) - pages} would open a ticket)"
 
 
 def attribution_lines(result: CheckResult) -> list[str]:
@@ -76,9 +85,10 @@ def _escape_md(text: str) -> str:
 
 def to_markdown(result: CheckResult) -> str:
     lines = ["# stagewatch check", "", summary_line(result), "",
-             "| check | verdict | value | warn / critical | n | m | what moved |", "|---|---|---:|---:|---:|---:|---|"]
+             "| check | verdict | severity | value | warn / critical | n | m | what moved |",
+             "|---|---|---|---:|---:|---:|---:|---|"]
     for r in result.rows:
-        lines.append(f"| {_escape_md(r.id)} | {MARK[r.verdict]} | {fmt(r.value)} | {_threshold(r.warn, r.critical)} "
+        lines.append(f"| {_escape_md(r.id)} | {MARK[r.verdict]} | {r.severity} | {fmt(r.value)} | {_threshold(r.warn, r.critical)} "
                      f"| {'' if r.n is None else f'{r.n:,}'} | {'' if r.m is None else f'{r.m:,}'} | "
                      f"{_escape_md(r.words)} |")
     attribution = attribution_lines(result)
@@ -120,6 +130,7 @@ def print_table(result: CheckResult, console: Any = None, only_alerts: bool = Fa
                   show_edge=False, pad_edge=False)
     table.add_column("stage / check", no_wrap=True)
     table.add_column("verdict", no_wrap=True)
+    table.add_column("severity", no_wrap=True)
     table.add_column("value", justify="right", no_wrap=True)
     table.add_column("warn / crit", justify="right", no_wrap=True)
     table.add_column("n", justify="right", no_wrap=True)
@@ -132,10 +143,10 @@ def print_table(result: CheckResult, console: Any = None, only_alerts: bool = Fa
             continue
         if r.stage != stage:
             stage = r.stage
-            table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", *([""] if wide else []))
+            table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", "", *([""] if wide else []))
         name = r.id.split(".", 1)[1] if r.id.startswith(r.stage + ".") else r.id
         words = r.words if r.verdict != "ok" else ""
-        table.add_row(f"  {escape(name)}", f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", fmt(r.value),
+        table.add_row(f"  {escape(name)}", f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", r.severity, fmt(r.value),
                       _threshold(r.warn, r.critical), "" if r.n is None else f"{r.n:,}",
                       *([escape(words)] if wide else []))
         if words and not wide:
