@@ -147,3 +147,24 @@ def test_a_missing_required_key_no_typo_explains_is_still_reported(write, capsys
     path = write("pipeline.yaml", "\n".join(x for x in STAGE.splitlines() if "serving:" not in x) + "\n    colour: blue\n")
     err = _err(capsys, ["propose", str(path)])
     assert "'serving' is a required property" in err and "unknown key 'colour'" in err, err
+
+
+@pytest.mark.parametrize("given", ["plan", "json"])
+def test_a_file_given_as_the_baseline_directory_says_a_directory_is_expected(write, tmp_path, capsys, given):
+    """`--baseline plan.yaml` (or any file other than the baseline itself) is a mix-up of arguments, not a damaged
+    baseline: the message says what goes there."""
+    source, plan = write("p.yaml", SMALL), tmp_path / "plan.yaml"
+    assert main(["propose", str(source), "-o", str(plan)]) == 0
+    wrong = plan if given == "plan" else write("counts.json", '{"windows": []}')
+    for argv in (["check", str(plan), "--baseline", str(wrong), "--data", "scorer=logs.parquet"],
+                 ["propose", str(source), "--baseline", str(wrong), "-o", str(tmp_path / "again.yaml")]):
+        err = _err(capsys, argv)
+        assert f"{wrong}: a file where a baseline directory is expected" in err, err
+        assert "a directory written by `stagewatch calibrate`" in err and "not valid JSON" not in err, err
+    # The baseline file itself, damaged, is still told as damaged.
+    damaged = tmp_path / "base" / "baseline.json"
+    damaged.parent.mkdir()
+    damaged.write_text('{"baseline": ')
+    for target in (damaged.parent, damaged):
+        assert "not valid JSON (truncated or edited?)" in _err(
+            capsys, ["check", str(plan), "--baseline", str(target), "--data", "scorer=logs.parquet"])
