@@ -168,3 +168,17 @@ def test_a_file_given_as_the_baseline_directory_says_a_directory_is_expected(wri
     for target in (damaged.parent, damaged):
         assert "not valid JSON (truncated or edited?)" in _err(
             capsys, ["check", str(plan), "--baseline", str(target), "--data", "scorer=logs.parquet"])
+
+
+def test_what_was_expected_stays_with_the_first_problem_of_several(write, capsys):
+    """The keys a stage takes belong to the unknown key, the first problem; the lines after it are problems of
+    their own and carry no expectation of the first."""
+    path = write("pipeline.yaml", SMALL.replace("volume_per_hour: 1000\n    inputs", "volum_per_hour: 1000\n    inputs")
+                 .replace("serving: online", "serving: onlin").replace("latency_slo_ms: 50", "latency_slo_ms: -5"))
+    lines = _err(capsys, ["propose", str(path)]).strip().splitlines()
+    assert len(lines) == 3, lines
+    assert "unknown key 'volum_per_hour' (did you mean 'volume_per_hour'?) (expected: keys among" in lines[0]
+    assert lines[0].endswith("upstream, volume_per_hour)"), lines[0]
+    assert lines[1].startswith(f"  also {path}:") and "'onlin' is not allowed" in lines[1]
+    assert lines[2].startswith(f"  also {path}:") and "-5 is less than the minimum" in lines[2]
+    assert not any("(expected:" in line for line in lines[1:]), lines

@@ -187,8 +187,7 @@ def check_answers(answers: dict[str, Any], path: str, lines: dict[str, int | Non
         try:
             check_known(form.question(key, "", ""), value)
         except StagewatchError as exc:
-            problems.append((lines.get(key), exc.message + (f" (expected: {exc.expected})" if exc.expected
-                                                             else "")))
+            problems.append((lines.get(key), exc.described()))
     if problems:
         raise listed(problems, path)
 

@@ -43,8 +43,7 @@ def lint_document(doc: yamlio.Document) -> list[Finding]:
     try:
         pipeline_of(doc.data, doc)
     except StagewatchError as exc:
-        return [Finding(doc.path, exc.line, "description", str(exc.message)
-                        + (f" (expected: {exc.expected})" if exc.expected else ""))]
+        return [Finding(doc.path, exc.line, "description", exc.described())]
     return list(_meaning(doc))
 
 
