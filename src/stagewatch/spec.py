@@ -145,11 +145,11 @@ def from_document(doc: yamlio.Document) -> Pipeline:
                               line=1, expected="pipeline: NAME, stages: [...]")
     if "plan_version" in doc.data:
         beside = Path(doc.path).with_name(Path(doc.path).stem + ".pipeline.yaml")
-        where = (f"here, most likely {beside}, which the interview wrote beside the plan" if beside.is_file() else
+        which = (f"here, most likely {beside}, which the interview wrote beside the plan" if beside.is_file() else
                  "the file the plan was proposed from (the interview writes it beside the plan as "
                  "PLAN.pipeline.yaml)")
         raise StagewatchError(f"this is a plan, not a pipeline description: give the pipeline description "
-                              f"{where}", file=doc.path, line=doc.line_of(["plan_version"]),
+                              f"{which}", file=doc.path, line=doc.line_of(["plan_version"]),
                               expected="a pipeline description: pipeline: NAME, stages: [...]")
     yamlio.validate(doc, "pipeline")
     data = doc.data

@@ -7,7 +7,7 @@ import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Iterable
+from typing import TYPE_CHECKING, Any, Iterable, cast
 
 import yaml
 
@@ -96,7 +96,7 @@ def _check_plain_tree(root: yaml.Node, path: str) -> None:
         kind = type(node)
         if kind is scalar:
             if node.tag in (_INT_TAG, _FLOAT_TAG):
-                _check_scalar(node, path, derived)
+                _check_scalar(cast(yaml.ScalarNode, node), path, derived)  # type() above, not isinstance: fast
             continue
         if kind is mapping:
             seen: dict[str, int] = {}
@@ -362,7 +362,9 @@ class _Dumper(_CachedResolve, getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  #
     def represent(self, data: Any) -> None:
         """PyYAML's ``represent``, with the nodes of plain data built in one pass (:mod:`stagewatch.yamlnodes`)."""
         self.serialize(yamlnodes.nodes(data, super().represent_data))
-        self.represented_objects, self.object_keeper, self.alias_key = {}, [], None
+        self.represented_objects: dict[Any, Any] = {}
+        self.object_keeper: list[Any] = []
+        self.alias_key = None
 
     def represent_data(self, data: Any) -> yaml.Node:
         if type(data) is str:  # never an alias: straight to the one representer for text
