@@ -263,3 +263,42 @@ def test_the_closing_question_offers_the_fix_for_the_finding_it_names(tmp_path, 
     decline = _file(tmp_path, "revise.0: finish\ngaps.fix: false\n", "decline.yaml")
     assert main(["interview", str(out), "--answers", str(decline)]) == 2
     assert "not written" in capsys.readouterr().err and out.read_text() == before
+
+
+# --- the stages an answers file makes: the ones it answers, never made-up ones ------------------------------------
+
+TWO_STAGES = """
+pipeline.name: hub
+stages.0.id: scanner
+stages.0.kind: source
+stages.1.id: router
+"""
+
+
+@pytest.mark.parametrize("count", ["", "pipeline.stage_count: 2\n", "pipeline.stage_count: 0\n"])
+def test_an_answers_file_makes_exactly_the_stages_it_answers(tmp_path, count):
+    """Without a stage count the count follows from the highest stage answered; with 0 (one by one) no stage is
+    added past the last one answered (the default "add another" used to add stages until the process was
+    killed)."""
+    out = tmp_path / "plan.yaml"
+    assert main(["interview", "--answers", str(_file(tmp_path, TWO_STAGES + count)), "-o", str(out)]) == 0
+    description = yaml.safe_load((tmp_path / "plan.pipeline.yaml").read_text())
+    assert [st["id"] for st in description["stages"]] == ["scanner", "router"]
+    assert lint_file(str(out)) == []
+
+
+@pytest.mark.parametrize("text, line, said", [
+    (TWO_STAGES + "pipeline.stage_count: 5\n", 6,
+     "pipeline.stage_count is 5, but nothing is answered for stages.2, stages.3, stages.4"),
+    (TWO_STAGES.replace("stages.1.", "stages.2.").replace("stages.0.", "stages.1."), None,
+     "the answers give stages up to stages.2, but nothing for stages.0"),
+    ("pipeline.name: hub\n", None, "the answers give no stage"),
+])
+def test_stages_an_answers_file_does_not_answer_are_refused(tmp_path, capsys, text, line, said):
+    path = _file(tmp_path, text)
+    out = tmp_path / "plan.yaml"
+    assert main(["interview", "--answers", str(path), "-o", str(out)]) == 2
+    err = capsys.readouterr().err
+    assert said in err and "stages are numbered from 0" in err and "(expected: " in err, err
+    assert (f"{path}:{line}:" if line else f"{path}: ") in err, err
+    assert not out.exists() and not (tmp_path / "plan.pipeline.yaml").exists()

@@ -135,3 +135,23 @@ def test_a_page_at_burn_rate_1_or_less_is_found(tmp_path, write):
     assert "too short for paging" in slo["review"]
     # The default 30-day period pages at 14.4 and 6: no finding.
     assert "burn-rate" not in _codes(_plan(tmp_path, write))
+
+
+def test_a_missing_ml_test_score_check_is_named(tmp_path, write):
+    # Breck et al., "The ML Test Score: A Rubric for ML Production Readiness and Technical Debt", IEEE Big Data
+    # 2017, table IV: Monitor 4 "Models are not too stale", Monitor 7 "The model has not experienced a regression in
+    # prediction quality on served data".
+    out = _plan(tmp_path, write)
+
+    def drop(data, checks):
+        scorer = data["stages"][1]
+        scorer["metrics"] = [m for m in scorer["metrics"] if not set(m.get("ml_test_score", [])) & checks]
+
+    _change(out, lambda data: drop(data, {7}))
+    [found] = [f for f in lint_file(str(out)) if f.code == "ml-test-score"]
+    assert found.message == ("learned stage 'scorer' lacks ML Test Score monitoring check 7 (prediction quality has "
+                             "not regressed)")
+    _change(out, lambda data: drop(data, {4}))
+    [found] = [f for f in lint_file(str(out)) if f.code == "ml-test-score"]
+    assert found.message.endswith("monitoring checks 4 (models are not too stale), 7 (prediction quality has not "
+                                  "regressed)")

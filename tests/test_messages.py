@@ -147,3 +147,38 @@ def test_a_missing_required_key_no_typo_explains_is_still_reported(write, capsys
     path = write("pipeline.yaml", "\n".join(x for x in STAGE.splitlines() if "serving:" not in x) + "\n    colour: blue\n")
     err = _err(capsys, ["propose", str(path)])
     assert "'serving' is a required property" in err and "unknown key 'colour'" in err, err
+
+
+@pytest.mark.parametrize("given", ["plan", "json"])
+def test_a_file_given_as_the_baseline_directory_says_a_directory_is_expected(write, tmp_path, capsys, given):
+    """`--baseline plan.yaml` (or any file other than the baseline itself) is a mix-up of arguments, not a damaged
+    baseline: the message says what goes there."""
+    source, plan = write("p.yaml", SMALL), tmp_path / "plan.yaml"
+    assert main(["propose", str(source), "-o", str(plan)]) == 0
+    wrong = plan if given == "plan" else write("counts.json", '{"windows": []}')
+    for argv in (["check", str(plan), "--baseline", str(wrong), "--data", "scorer=logs.parquet"],
+                 ["propose", str(source), "--baseline", str(wrong), "-o", str(tmp_path / "again.yaml")]):
+        err = _err(capsys, argv)
+        assert f"{wrong}: a file where a baseline directory is expected" in err, err
+        assert "a directory written by `stagewatch calibrate`" in err and "not valid JSON" not in err, err
+    # The baseline file itself, damaged, is still told as damaged.
+    damaged = tmp_path / "base" / "baseline.json"
+    damaged.parent.mkdir()
+    damaged.write_text('{"baseline": ')
+    for target in (damaged.parent, damaged):
+        assert "not valid JSON (truncated or edited?)" in _err(
+            capsys, ["check", str(plan), "--baseline", str(target), "--data", "scorer=logs.parquet"])
+
+
+def test_what_was_expected_stays_with_the_first_problem_of_several(write, capsys):
+    """The keys a stage takes belong to the unknown key, the first problem; the lines after it are problems of
+    their own and carry no expectation of the first."""
+    path = write("pipeline.yaml", SMALL.replace("volume_per_hour: 1000\n    inputs", "volum_per_hour: 1000\n    inputs")
+                 .replace("serving: online", "serving: onlin").replace("latency_slo_ms: 50", "latency_slo_ms: -5"))
+    lines = _err(capsys, ["propose", str(path)]).strip().splitlines()
+    assert len(lines) == 3, lines
+    assert "unknown key 'volum_per_hour' (did you mean 'volume_per_hour'?) (expected: keys among" in lines[0]
+    assert lines[0].endswith("upstream, volume_per_hour)"), lines[0]
+    assert lines[1].startswith(f"  also {path}:") and "'onlin' is not allowed" in lines[1]
+    assert lines[2].startswith(f"  also {path}:") and "-5 is less than the minimum" in lines[2]
+    assert not any("(expected:" in line for line in lines[1:]), lines

@@ -36,10 +36,17 @@ class StagewatchError(Exception):
         self.line = line
         self.expected = expected
 
+    def described(self) -> str:
+        """The message with what was expected, which belongs to the first problem: when further problems follow
+        on their own lines (``also file:line: ...``), it goes at the end of the first line, not after the last."""
+        if not self.expected:
+            return self.message
+        first, newline, rest = self.message.partition("\n")
+        return f"{first} (expected: {self.expected}){newline}{rest}"
+
     def __str__(self) -> str:
         where = ""
         if self.file:
             where = f"{self.file}:{self.line}: " if self.line else f"{self.file}: "
-        tail = f" (expected: {self.expected})" if self.expected else ""
         # Messages quote what the user wrote: escape codes and bidi overrides are shown, not obeyed.
-        return terminal(cap(f"{where}{self.message}{tail}"))
+        return terminal(cap(f"{where}{self.described()}"))

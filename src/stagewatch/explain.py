@@ -2,12 +2,13 @@
 
 from __future__ import annotations
 
+import re
 from typing import Any
 
 from stagewatch import wording
 from stagewatch.errors import StagewatchError
 from stagewatch.escape import terminal
-from stagewatch.plan import all_metrics
+from stagewatch.plan import all_metrics, fingerprint
 
 
 def find_metric(plan: dict[str, Any], metric_id: str, path: str) -> dict[str, Any]:
@@ -32,7 +33,7 @@ def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
     for key, label in (("samples_per_window", "samples per window"), ("reference_samples", "reference samples"),
                        ("evaluations_per_week", "evaluations per week"), ("alpha", "alpha per evaluation"),
                        ("noise_floor", "noise floor"), ("detectable_change", "change the alert catches"),
-                       ("detectable_at_floor", "change the floor allows"),
+                       ("detectable_at_floor", "change passing the floor"),
                        ("power", "power"), ("expected_false_alarms_per_week", "expected false alarms/week"),
                        ("evaluation", "evaluated"), ("evaluation_lag", "evaluated after"),
                        ("detection_delay", "change seen within")):
@@ -43,13 +44,30 @@ def explain(plan: dict[str, Any], metric_id: str, path: str) -> str:
                      f"{pair['short_window']} ({pair['budget_consumed']:.0%} of the error budget)")
     if sizing.get("derivation"):
         lines.append("")
-        lines.append("  " + sizing["derivation"])
+        lines.append("  " + _derivation(m, sizing["derivation"]))
     if m.get("review"):
         lines.append("")
         lines.append(f"  review: {m['review']}")
     if m.get("note"):
         lines.append(f"  note:   {m['note']}")
     return terminal("\n".join(lines))  # escape codes and bidi overrides in a plan's text are shown, not obeyed
+
+
+def _derivation(m: dict[str, Any], text: str) -> str:
+    """The sizing's derivation, told for what the metric is now.
+
+    A metric carries a fingerprint of its editable fields while it is as proposed. Without one it has reviewer
+    edits (or was written by hand), and propose keeps its numbers as the reviewer left them: its critical threshold
+    is the one set in review, no longer a suggestion. A fingerprint that no longer matches means an edit since the
+    last propose, so the derivation describes the numbers before it.
+    """
+    if "fingerprint" not in m:
+        return re.sub(r"The suggested critical threshold (\S+) is", r"The critical threshold \1, set in review, is",
+                      text)
+    if m["fingerprint"] != fingerprint(m):
+        return (text + " The metric was edited after this was worked out, so these figures describe the numbers "
+                "before the edit: `stagewatch propose` sizes the edited ones again.")
+    return text
 
 
 def _th(value: Any) -> str:

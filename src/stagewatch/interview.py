@@ -20,8 +20,8 @@ from stagewatch.safewrite import Snapshot, resolve_target
 from stagewatch.interview_answers import (FIELD_TYPES, _duration, _fields_text, _name_validator, _number,  # noqa: F401
                                           _optional_number, _parse_fields, _positive)
 from stagewatch.interview_keys import (CHANGE_RATES, KINDS, LABELS, LAYERS, MODALITIES, OUTPUTS,  # noqa: F401
-                                       CONFIRM, PIPELINE, REVISE, SERVING, STAGE, WHICH, Question, check_known,
-                                       form_of, listed)
+                                       CONFIRM, PIPELINE, REVISE, SERVING, STAGE, WHICH, Question, answered_stages,
+                                       check_known, form_of, listed)
 from stagewatch.interview_stage import STRUCTURED, ask_stage  # noqa: F401
 
 Answers = dict[str, Any]
@@ -234,17 +234,22 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
                 stages[i] = stage
             touched.append(stage["id"])
     else:
+        answered = answered_stages(session.known)
         count = session.ask(PIPELINE["stage_count"].question(
             "pipeline.stage_count", "How many stages? (0 if you want to add them one by one)",
-            "Counting sources, gates, models and rule steps.", default=5))
+            "Counting sources, gates, models and rule steps.", default=max(answered) + 1 if answered else 5))
+        if not session.interactive:
+            _every_stage_answered(session, count, answered)
         i = 0
         while True:
             stages.append(ask_stage(session, i, count or None, head, stages))
             i += 1
             if count and i >= count:
                 break
+            # without a terminal, a stage nobody answered for is not added (the default would add them forever)
             if not count and not session.ask(CONFIRM.question(f"stages.{i}.more", "Add another stage?",
-                                                              "Stop when every stage is in.", default=True)):
+                                                              "Stop when every stage is in.",
+                                                              default=session.interactive or i in answered)):
                 break
         touched = [st["id"] for st in stages]
     description = {**head, "stages": stages}
@@ -274,6 +279,32 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
     decided = sum(1 for m in all_metrics(plan) if m["status"] != "proposed")
     return [f"wrote {plan_path}: {n} metrics, {decided} decided in this interview",
             f"wrote {description_path}: the pipeline description (use it with `stagewatch propose`)", *kept]
+
+
+def _every_stage_answered(session: Session, count: int, answered: set[int]) -> None:
+    """Without a terminal, every stage the interview would make has answers of its own: a stage count larger than
+    the stages answered, or a stage number skipped, is refused rather than filled with made-up stages."""
+    made = count or (max(answered) + 1 if answered else 1)
+    missing = [i for i in range(made) if i not in answered]
+    if not missing:
+        return
+    names = ", ".join(f"stages.{i}" for i in missing)
+    given = str(session.known.get("pipeline.stage_count", "")).strip() == str(count)  # and not refused
+    if not answered:
+        message = "the answers give no stage (stages are numbered from 0)"
+        expected = "answers for each stage, at least stages.0.id; the stage count follows from the highest stage"
+    elif given:
+        message = (f"pipeline.stage_count is {count}, but nothing is answered for {names} (stages are numbered "
+                   "from 0); stages are not made up")
+        expected = f"pipeline.stage_count: {max(answered) + 1}, or answers for {names}, at least stages.{missing[0]}.id"
+    else:
+        message = (f"the answers give stages up to stages.{max(answered)}, but nothing for {names} (stages are "
+                   "numbered from 0); stages are not made up")
+        expected = f"answers for {names}, at least stages.{missing[0]}.id, or the stages renumbered from 0"
+    line = session.lines.get("pipeline.stage_count") if given else None
+    if session.problems:
+        raise listed([*session.problems, (line, f"{message} (expected: {expected})")], session.source)
+    raise StagewatchError(message, file=session.source, line=line, expected=expected)
 
 
 def _merge_statuses(fresh: dict[str, Any], on_disk: dict[str, Any]) -> dict[str, Any]:

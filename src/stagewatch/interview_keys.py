@@ -137,6 +137,11 @@ def suggestion(key: str) -> str:
     return wording.did_you_mean(key, candidates, n=1)
 
 
+def answered_stages(answers: dict[str, Any]) -> set[int]:
+    """The numbers N of the stages an answers file or a draft answers anything for (keys ``stages.N.*``)."""
+    return {int(m.group(1)) for key in answers if (m := re.fullmatch(r"stages\.(\d+)\..+", str(key)))}
+
+
 def check_known(question: Question, value: Any) -> Any:
     """An answer from a file or a draft, held to the form the prompt would have produced and to the prompt's own
     check; raises StagewatchError naming the key."""
@@ -182,8 +187,7 @@ def check_answers(answers: dict[str, Any], path: str, lines: dict[str, int | Non
         try:
             check_known(form.question(key, "", ""), value)
         except StagewatchError as exc:
-            problems.append((lines.get(key), exc.message + (f" (expected: {exc.expected})" if exc.expected
-                                                             else "")))
+            problems.append((lines.get(key), exc.described()))
     if problems:
         raise listed(problems, path)
 

@@ -385,10 +385,12 @@ def _size_statistical(metric: dict[str, Any], traffic: Traffic, budget: Budget) 
         f"{_fmt(traffic.per_hour)} items per hour give {_fmt(chosen.n)} samples per {window_text} window against "
         f"{ref_text}. The {kind} budget allows {share:.3g} false alarms per week for this check, evaluated "
         f"{_fmt(chosen.evaluations)} times a week, so alpha = {chosen.alpha:.3g} per evaluation. {stat.describe()}; "
-        f"at this alpha the noise floor is {chosen.floor:.3g} ({stat.unit}); a true change of {at_floor:.3g} would "
-        f"clear the floor with {POWER:.0%} power"
-        + (f", and one of {detectable:.3g} makes the critical alert fire with {POWER:.0%} power."
-           if critical is not None else "."))
+        f"at this alpha the noise floor is {chosen.floor:.3g} ({stat.unit}); a true change of {at_floor:.3g} makes "
+        f"the observed value exceed the floor in {POWER:.0%} of windows"
+        + (f" (less than the floor itself: sampling noise adds to the observed {stat.unit}, on top of the true "
+           f"change)" if at_floor < chosen.floor else "")
+        + (f", and a true change of {detectable:.3g} makes it exceed the critical threshold {critical:g}, firing the "
+           f"alert, in {POWER:.0%} of windows." if critical is not None else "."))
     if notes:
         derivation += " Stagewatch " + "; ".join(notes) + "."
     elif critical is not None:

@@ -224,15 +224,25 @@ def add_thresholds(plan_path: str, out_dir: str, data: dict[str, Any], *, time_c
 def load_baseline(directory: str, plan: dict[str, Any]) -> dict[str, Any]:
     """The baseline body, after checking its hash and that it was made for this plan's pipeline."""
     path = os.path.join(directory, FILE) if os.path.isdir(directory) else directory
+    # --baseline names the directory calibrate wrote; its baseline.json is taken too. Any other file (a plan, a
+    # log) is a mix-up of arguments, not a damaged baseline.
+    other_file = not os.path.isdir(directory) and os.path.basename(directory) != FILE
+    mixed_up = StagewatchError("a file where a baseline directory is expected", file=path,
+                               expected=f"a directory written by `stagewatch calibrate`, such as baseline/, which "
+                               f"holds {FILE}")
     try:
         with open(path, encoding="utf-8") as handle:
             raw = json.load(handle)
     except FileNotFoundError:
         raise StagewatchError("no baseline here", file=path, expected="a directory written by `stagewatch calibrate`") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        if other_file:
+            raise mixed_up from None
         raise StagewatchError(f"the baseline is not valid JSON (truncated or edited?): {exc}", file=path,
                               expected="a baseline written by `stagewatch calibrate`; re-run it") from None
     if not isinstance(raw, dict) or "baseline" not in raw or "sha256" not in raw:
+        if other_file:
+            raise mixed_up
         raise StagewatchError("this is not a stagewatch baseline", file=path,
                               expected="a baseline written by `stagewatch calibrate`")
     body = raw["baseline"]
