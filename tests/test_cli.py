@@ -28,7 +28,7 @@ def test_version(capsys):
     assert capsys.readouterr().out.strip() == f"stagewatch {__version__}"
 
 
-HEAVY = ("scipy", "numpy", "networkx")
+HEAVY = ("scipy", "numpy", "networkx", "sqlglot", "duckdb", "pyspark")  # nor the data engines
 
 
 @pytest.mark.parametrize("option", ["--version", "--help"])

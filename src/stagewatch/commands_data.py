@@ -274,7 +274,7 @@ def add_parsers(sub: Any) -> None:
                    help="html: one self-contained page with the pipeline marked and the distributions of every "
                    "alerting check")
     p.add_argument("-o", "--output", metavar="FILE", help="write the result here (table: as Markdown)")
-    from stagewatch.data.dialects import DIALECTS
+    from stagewatch.data import DIALECTS  # not .dialects: building the parser must not import sqlglot
 
     p.add_argument("--emit-sql", choices=DIALECTS, metavar="DIALECT",
                    help="write the queries of this check in a warehouse's SQL (" + ", ".join(DIALECTS) + ") "

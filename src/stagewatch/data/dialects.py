@@ -16,9 +16,9 @@ from typing import Any
 
 from sqlglot import exp
 
+from stagewatch.data import DIALECTS  # noqa: F401  (named there, so that the command line needs no sqlglot)
 from stagewatch.errors import StagewatchError
 
-DIALECTS = ("duckdb", "spark", "trino", "bigquery", "snowflake", "postgres")
 EPOCH_US = "STAGEWATCH_EPOCH_US"  # placeholder function: microseconds since the epoch of a timestamp
 
 
