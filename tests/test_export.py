@@ -288,7 +288,8 @@ def pipelines(draw):
                                                  "ranking", "text", "records"])),
                  "serving": serving, "volume_per_hour": draw(st.sampled_from([1, 30, 1000, 200000])),
                  "change_rate": draw(st.sampled_from(["minutes", "hours", "days", "months"])),
-                 "upstream": sorted(draw(st.sets(st.sampled_from(ids[:i]), max_size=2))) if i else []}
+                 "upstream": sorted(draw(st.sets(st.sampled_from(ids[:i]), max_size=2)))
+                 if i and kind != "source" else []}  # a source takes no upstream
         if serving == "online" and draw(st.booleans()):
             stage["latency_slo_ms"] = draw(st.sampled_from([5, 40, 250, 1500]))
         if kind == "learned" and draw(st.booleans()):
