@@ -4,6 +4,7 @@ VENV ?= .venv
 PYTHON ?= python3
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.stagewatch-installed
+TEST_STAMP := $(VENV)/.stagewatch-test-extras
 SOURCES := pyproject.toml $(shell find src catalog templates -type f -not -name '*.pyc' 2>/dev/null)
 
 .PHONY: demo test install tools bench check clean
@@ -14,8 +15,13 @@ $(BIN)/python:
 $(STAMP): $(BIN)/python $(SOURCES)
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --upgrade pip
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check --force-reinstall --no-deps .
-	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test,spark]"
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check .
 	touch $(STAMP)
+
+# The tests also need the test tools and the Spark engine (PySpark is an optional extra for users).
+$(TEST_STAMP): $(STAMP)
+	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[test,spark]"
+	touch $(TEST_STAMP)
 
 install: $(STAMP)
 
@@ -26,7 +32,7 @@ tools:
 demo: install
 	$(BIN)/stagewatch demo -o stagewatch-demo
 
-test: install tools
+test: $(TEST_STAMP) tools
 	$(BIN)/python -m pytest
 
 # Static checks for contributors (not part of `make test`): pyflakes-level ruff rules and mypy.
@@ -35,7 +41,7 @@ check: install
 	$(BIN)/ruff check --select F,E9 src tests benchmarks
 	$(BIN)/mypy src/stagewatch
 
-bench: install
+bench: $(TEST_STAMP)
 	$(BIN)/python -m pip install --quiet --disable-pip-version-check ".[bench]"
 	$(BIN)/python benchmarks/bench_plan.py
 	$(BIN)/python benchmarks/bench_replay.py
