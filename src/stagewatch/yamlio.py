@@ -356,16 +356,10 @@ class _Dumper(_CachedResolve, getattr(yaml, "CSafeDumper", yaml.SafeDumper)):  #
 
     def represent(self, data: Any) -> None:
         """PyYAML's ``represent``, with the nodes of plain data built in one pass (:mod:`stagewatch.yamlnodes`)."""
-        self.serialize(yamlnodes.nodes(data, super().represent_data))
+        self.serialize(yamlnodes.nodes(data, self.represent_data))
         self.represented_objects.clear()
         self.object_keeper.clear()
         self.alias_key = None
-
-    def represent_data(self, data: Any) -> yaml.Node:
-        if type(data) is str:  # never an alias: straight to the one representer for text
-            self.alias_key = None  # as the base class does for text, or the node would be kept as an alias target
-            return _str_presenter(self, data)
-        return super().represent_data(data)
 
 
 def _str_presenter(dumper: yaml.SafeDumper, value: str) -> yaml.Node:
