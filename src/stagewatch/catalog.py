@@ -91,13 +91,12 @@ def aggregates(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -> 
     return bool(ups) and stage.output != "gate" and stage.volume_per_hour < AGGREGATES_BELOW * max(ups)
 
 
-def one_to_one(pipeline: Pipeline, graph: PipelineGraph) -> bool:
+def one_to_one(pipeline: Pipeline, derived: dict[str, _Derived]) -> bool:
     """Do items flow one to one from the sources to the end? Declared in the description, else inferred: no stage
     aggregates."""
     if pipeline.one_to_one is not None:
         return pipeline.one_to_one
-    stages = {s.id: s for s in pipeline.stages}
-    return not any(aggregates(s, stages, graph) for s in pipeline.stages)
+    return not any(d.aggregates for d in derived.values())
 
 
 def modality_enters(stage: Stage, stages: dict[str, Stage], graph: PipelineGraph) -> bool:
@@ -117,8 +116,7 @@ class _Derived:
     aggregates: bool
 
 
-def _derive(pipeline: Pipeline, graph: PipelineGraph) -> dict[str, _Derived]:
-    stages = {s.id: s for s in pipeline.stages}
+def _derive(pipeline: Pipeline, stages: dict[str, Stage], graph: PipelineGraph) -> dict[str, _Derived]:
     out = {}
     for stage in pipeline.stages:
         handed = frozenset(_handed_over(stage, stages, graph))
@@ -180,7 +178,7 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
     """Every metric the catalog proposes for ``pipeline``, stages in topological order."""
     out: list[Proposal] = []
     stages = {s.id: s for s in pipeline.stages}
-    derived = _derive(pipeline, graph)
+    derived = _derive(pipeline, stages, graph)
     for stage_id in graph.order:
         stage = stages[stage_id]
         for rule in rules:
@@ -221,7 +219,7 @@ def match(rules: list[Rule], pipeline: Pipeline, graph: PipelineGraph) -> list[P
             continue
         if "sink" in cond and not (sinks and _traits_match(cond["sink"], sinks[0], pipeline, graph, derived)):
             continue
-        if "one_to_one" in cond and one_to_one(pipeline, graph) != cond["one_to_one"]:
+        if "one_to_one" in cond and one_to_one(pipeline, derived) != cond["one_to_one"]:
             continue
         for template in rule.metrics:
             values = {"stage": PIPELINE_OWNER, "pipeline": pipeline.name}

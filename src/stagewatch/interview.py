@@ -224,7 +224,7 @@ def run(session: Session, output: str, existing_plan: str | None = None, inputs:
                 ids = [st["id"] for st in stages]
                 target = session.ask(WHICH.question(f"revise.{len(touched)}.which", "Which stage?", "",
                                                     default=ids[0], choices=ids))
-                i = [st["id"] for st in stages].index(target)
+                i = ids.index(target)
                 others = [st for st in stages if st["id"] != target]
                 stage = ask_stage(session, i, len(stages), head, others[:i], current=stages[i],
                                   prefix=f"revise.{len(touched)}.stage")

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 from typing import Any
 
-from stagewatch import yamlio
+from stagewatch import fold, yamlio
 from stagewatch.errors import StagewatchError
 from stagewatch.interview import Session
 from stagewatch.interview_keys import CONFIRM
@@ -25,7 +25,9 @@ def close(s: Session, plan: dict[str, Any], pipeline: Pipeline, path: str) -> di
     if not findings:
         return plan
     fresh = {m["id"]: m for m in all_metrics(compose(pipeline))}
-    fixes = [(f, _fix(f, plan, fresh)) for f in findings]
+    metrics = {m["id"]: m for m in all_metrics(plan)}
+    firsts = {later["id"]: first["id"] for first, later in fold.duplicates(metrics.values())}
+    fixes = [(f, _fix(f, plan, metrics, fresh, firsts)) for f in findings]
     s.out("lint would reject the plan as it stands:")
     for finding, (words, _) in fixes:
         s.out(f"  [{finding.code}] {finding.message}")
@@ -78,9 +80,10 @@ def drop(plan: dict[str, Any], ids: set[str]) -> None:
             plan[key] = [m for m in plan[key] if m["id"] not in ids]
 
 
-def _fix(finding: Finding, plan: dict[str, Any], fresh: dict[str, dict[str, Any]]) -> tuple[str, Any]:
-    """(the fix in words, a function that applies it) for one finding."""
-    metrics = {m["id"]: m for m in all_metrics(plan)}
+def _fix(finding: Finding, plan: dict[str, Any], metrics: dict[str, dict[str, Any]], fresh: dict[str, dict[str, Any]],
+         firsts: dict[str, str]) -> tuple[str, Any]:
+    """(the fix in words, a function that applies it) for one finding; ``metrics`` are the plan's by id, ``firsts``
+    the check each later one of a duplicate pair repeats (``fold.duplicates``)."""
     subject = finding.subject or ""
     if finding.code in _NUMBERS and subject in metrics:
         if subject in fresh:
@@ -98,7 +101,7 @@ def _fix(finding: Finding, plan: dict[str, Any], fresh: dict[str, dict[str, Any]
         return ("restore the proposed thresholds of " + (", ".join(m["id"] for m in edited) or "every metric"),
                 restore_all)
     if finding.code == "duplicate-signal" and subject in metrics:
-        first = next((m for m in metrics if m != subject and f"'{m}'" in finding.message), "another check")
+        first = firsts.get(subject, "another check")
 
         def reject() -> None:
             metrics[subject]["status"] = "rejected"

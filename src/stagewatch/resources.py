@@ -6,9 +6,8 @@ repository root, so we look there second.
 
 from __future__ import annotations
 
-import functools
 import json
-from functools import lru_cache
+from functools import lru_cache, partial
 from pathlib import Path
 from typing import Any, Callable
 
@@ -66,7 +65,7 @@ def compiled(kind: str) -> Callable[[Any], Any]:
         shipped = importlib.import_module(f"stagewatch.compiled_schemas.{kind.replace('-', '_')}")
         raw = (_PACKAGE / "schemas" / f"{kind}.schema.json").read_bytes()
         if shipped.SCHEMA_SHA256 == hashlib.sha256(raw).hexdigest():
-            return functools.partial(shipped.validate, custom_formats=formats)
+            return partial(shipped.validate, custom_formats=formats)
     except ImportError:  # a source checkout: compile now
         pass
     import fastjsonschema

@@ -40,10 +40,15 @@ def output_column(stage: Stage) -> str:
     return stage.outputs[0].name if stage.outputs else DEFAULT_OUTPUT_COLUMN.get(stage.output, "output")
 
 
+def passes_on(stage: Stage) -> bool:
+    """Whether a stage passes its items on unchanged (a gate, a source of records, with no declared outputs)."""
+    return not stage.outputs and stage.output in ("gate", "records")
+
+
 def handoff_column(stage: Stage) -> str:
     """What a stage hands to the next one, as the consumer logs it: its output column, or the item id when the
     stage passes items on unchanged (a gate, a source of records)."""
-    if not stage.outputs and stage.output in ("gate", "records"):
+    if passes_on(stage):
         return "record_id"
     return output_column(stage)
 
@@ -51,14 +56,10 @@ def handoff_column(stage: Stage) -> str:
 def handoff_columns(stage: Stage, consumer: Stage | None) -> list[str]:
     """The columns ``consumer`` logs of what it receives from ``stage``: for a stage that passes items on unchanged,
     the fields both declare (a load cell's weight), else the item id; for any other stage, its output column."""
-    if not stage.outputs and stage.output in ("gate", "records"):
+    if passes_on(stage):
         shared = [f.name for f in stage.inputs if consumer and any(c.name == f.name for c in consumer.inputs)]
         return shared or ["record_id"]
     return [handoff_column(stage)]
-
-
-def _has_values(stage: Stage) -> bool:
-    return bool(stage.outputs) or stage.output not in ("gate", "records")
 
 
 def _series(stage: Stage) -> str:
@@ -76,7 +77,7 @@ def received_text(stage: Stage, stages: dict[str, Stage]) -> str:
         seen.add(up.id)
         if up.output == "text":
             return handoff_column(up)
-        if not up.outputs and up.output in ("gate", "records"):
+        if passes_on(up):
             queue.extend(up.upstream)
     return "text"
 
@@ -118,7 +119,7 @@ def reads_for(template: dict[str, Any] | None, *, owner: Stage | None, pipeline:
     }
     valueless = log_stage if "{output}" in str(reads.get("column")) else producer
     if ("{output}" in str(reads.get("column")) or "{handoff}" in str(reads.get("column"))) \
-            and not _has_values(valueless) and reads.get("condition") not in ("invalid", "missing", "rows"):
+            and passes_on(valueless) and reads.get("condition") not in ("invalid", "missing", "rows"):
         return {"measured_in": SERVICE}  # an item id has no distribution to watch
     for key in ("column", "other_column"):
         if key in reads:

@@ -10,6 +10,7 @@ import numpy as np
 from stagewatch import charts, diagram
 from stagewatch.data.attribution import CAVEAT
 from stagewatch.data.check import CheckResult, CheckRow
+from stagewatch.data.report import short_id, summary_line
 from stagewatch.data.sources import format_time
 from stagewatch.render_html import page
 
@@ -61,13 +62,7 @@ def _cover(c: Any) -> float:
     return float(np.median(np.diff(c.times))) if c.times.size > 1 else 0.0
 
 
-def _short(check_id: str, stage: str) -> str:
-    return check_id[len(stage) + 1:] if check_id.startswith(stage + ".") else check_id
-
-
 def render_check(result: CheckResult) -> str:
-    from stagewatch.data.report import summary_line
-
     plan = result.plan
     by_stage: dict[str, list[CheckRow]] = {}
     for r in result.rows:
@@ -86,7 +81,7 @@ def render_check(result: CheckResult) -> str:
                 at=format_time(result.at) or "no data", summary=summary_line(result), counts=result.counts(),
                 diagram=picture, alerting=[(r, chart_for(r)) for r in alerting_rows],
                 stages=[(s, by_stage[s], marks.get(s)) for s in [x["id"] for x in plan["stages"]] if s in by_stage],
-                short=_short, caveat=CAVEAT, origins=origins)
+                short=short_id, caveat=CAVEAT, origins=origins)
 
 
 def render_replay(result: Any, plan: dict[str, Any]) -> str:
@@ -107,7 +102,7 @@ def render_replay(result: Any, plan: dict[str, Any]) -> str:
     picture = diagram.build(plan, marks, origins, consequences, edge_marks)
     rows = []
     for c in result.checks:
-        rows.append({"check": c, "short": _short(c.id, c.stage),
+        rows.append({"check": c, "short": short_id(c.id, c.stage),
                      "timeline": charts.timeline(c.times, c.levels, result.start, result.end, _cover(c)),
                      "per_week": c.per_week(c.critical_firings), "planned": planned(c.planned_critical_per_week),
                      "factor": factor_words(c.factor),

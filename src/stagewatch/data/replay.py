@@ -104,6 +104,9 @@ class ReplayResult:
     def over_budget(self) -> bool:
         return self.pages_per_week() > self.budget_pages
 
+    def tickets_over_budget(self) -> bool:
+        return self.tickets_per_week() > self.budget_tickets
+
 
 def _figure(shown: Any) -> float | None:
     """A figure as the plan shows it ("< 1e-6" counts as its bound), None when absent."""

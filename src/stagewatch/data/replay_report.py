@@ -27,14 +27,10 @@ def timeline(times: np.ndarray, levels: np.ndarray, start: float, end: float) ->
     return "".join(" " if w < 0 else TIMELINE_MARKS[w] for w in worst)
 
 
-def tickets_over_budget(result: ReplayResult) -> bool:
-    return result.tickets_per_week() > result.budget_tickets
-
-
 def budget_badge(result: ReplayResult) -> tuple[str, str]:
     """The replay judged against both budgets, as (verdict, words): pages over budget is critical, tickets over
     budget alone is warn, both within is ok; the words name what was judged."""
-    pages, tickets = result.over_budget(), tickets_over_budget(result)
+    pages, tickets = result.over_budget(), result.tickets_over_budget()
     if pages and tickets:
         return "critical", "pages and tickets over budget"
     if pages:
@@ -52,7 +48,7 @@ def summary_lines(result: ReplayResult) -> list[str]:
              f"sampling noise alone, budget {result.budget_pages:g}"
              + ("  OVER BUDGET" if result.over_budget() else ""),
              f"tickets per week: {result.tickets_per_week():.3g} replayed, {fmt(result.planned_tickets)} planned, "
-             f"budget {result.budget_tickets:g}" + ("  OVER BUDGET" if tickets_over_budget(result) else "")]
+             f"budget {result.budget_tickets:g}" + ("  OVER BUDGET" if result.tickets_over_budget() else "")]
     noisy = [c for c in result.checks if c.verdict == "noisier than planned"]
     if noisy:
         lines.append(f"{len(noisy)} check(s) noisier than planned; noisiest: " + ", ".join(
@@ -92,7 +88,7 @@ def to_json(result: ReplayResult, plan: dict[str, Any]) -> str:
                         "budget_pages_per_week": result.budget_pages,
                         "budget_tickets_per_week": result.budget_tickets,
                         "over_budget": result.over_budget(),
-                        "tickets_over_budget": tickets_over_budget(result)},
+                        "tickets_over_budget": result.tickets_over_budget()},
            "checks": [{**c.to_dict(), "timeline": timeline(c.times, c.levels, result.start, result.end)}
                       for c in result.checks],
            "not_measured": [r.id for r in result.not_measured]}

@@ -23,6 +23,11 @@ def fmt(x: float | None) -> str:
     return f"{x:.3g}" if abs(x) >= 1e-3 else f"{x:.2e}"
 
 
+def short_id(check_id: str, stage: str) -> str:
+    """A check's id without its stage's prefix, for tables grouped by stage."""
+    return check_id[len(stage) + 1:] if check_id.startswith(stage + ".") else check_id
+
+
 def _threshold(warn: float | None, critical: float | None) -> str:
     return f"{fmt(warn)} / {fmt(critical)}"
 
@@ -144,7 +149,7 @@ def print_table(result: CheckResult, console: Any = None, only_alerts: bool = Fa
         if r.stage != stage:
             stage = r.stage
             table.add_row(f"[bold]{escape(stage)}[/]", "", "", "", "", "", *([""] if wide else []))
-        name = r.id.split(".", 1)[1] if r.id.startswith(r.stage + ".") else r.id
+        name = short_id(r.id, r.stage)
         words = r.words if r.verdict != "ok" else ""
         table.add_row(f"  {escape(name)}", f"[{STYLE[r.verdict]}]{MARK[r.verdict]}[/]", r.severity, fmt(r.value),
                       _threshold(r.warn, r.critical), "" if r.n is None else f"{r.n:,}",

@@ -42,7 +42,7 @@ def _stored(source: Source | None, seconds: float, pad: float) -> Expr | None:
     return exp.cast(exp.Literal.string(text), kind)
 
 
-def period(start: float | None, end: float | None) -> Expr | None:
+def period(start: float | None, end: float | None) -> Expr:
     """``start < t <= end`` (either side may be open)."""
     parts: list[Expr] = [ts().is_(exp.null()).not_()]
     if start is not None:
@@ -169,7 +169,6 @@ def profile(engine: Any, source: Source, numeric: dict[str, tuple[Expr, list[flo
     items: list[Expr] = []
     names = list(numeric)
     where = period(start, end)
-    assert where is not None  # the period always requires a readable time
     for i, name in enumerate(names):
         value, _ = numeric[name]
         clean = exp.Case(ifs=[exp.If(this=ag.finite(value), true=value.copy())])
